@@ -1,0 +1,99 @@
+"""Estimators of the test error of kernel ridge regression from the training set alone.
+
+Everything is on one ridge axis, the scikit-learn ``KernelRidge`` convention of `ridge_fit`:
+``α = (K + r·I)⁻¹ y`` with K the unnormalized (N, N) Gram matrix. Errors are mean squared errors,
+averaged over examples and outputs. One eigendecomposition ``K = V Λ Vᵀ`` serves all ridges.
+
+- Leave-one-out (closed form through the hat matrix ``H = K (K + rI)⁻¹``, common practice; e.g.
+  Rifkin & Lippert, MIT-CSAIL-TR-2007-025): ``LOO = mean_i ((y_i − f_i) / (1 − H_ii))²``.
+- GCV (Craven & Wahba, Numer. Math. 31, 1979; Golub, Heath & Wahba, Technometrics 21, 1979):
+  ``GCV = (1/N)‖(I − H) y‖² / ((1/N) tr(I − H))²``.
+- KARE (Jacot, Şimşek, Spadaro, Hongler & Gabriel, "Kernel Alignment Risk Estimator", NeurIPS
+  2020, arXiv:2006.09796): with the ridge λ on ``K/N``,
+  ``KARE = (1/N) yᵀ (K/N + λI)⁻² y / ((1/N) tr (K/N + λI)⁻¹)²``. Its λ is ``r / N`` on our axis;
+  with that conversion KARE and GCV are algebraically the same number (``I − H = r (K + rI)⁻¹``),
+  computed here by the two formulas independently.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import warnings
+
+import numpy as np
+
+from . import _checks
+from ._eig import eigh_descending
+from ._result import Result
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
+class RiskEstimates(Result):
+    """Risk estimates per ridge, all on the `ridge_fit` (KernelRidge) ridge axis.
+
+    Fields:
+        ridges: (R,) ridges r in ``(K + r·I) α = y``.
+        loo: (R,) leave-one-out mean squared error.
+        gcv: (R,) generalized cross-validation estimate.
+        kare: (R,) kernel alignment risk estimate (its own λ is ``ridges / N``).
+        best: estimator name ("loo", "gcv", "kare") -> the ridge minimising it.
+    """
+
+    ridges: np.ndarray
+    loo: np.ndarray
+    gcv: np.ndarray
+    kare: np.ndarray
+    best: dict
+
+
+def risk(k_train, y_train, *, ridges) -> RiskEstimates:
+    """Leave-one-out, GCV and KARE risk estimates of kernel ridge regression, per ridge.
+
+    Args:
+        k_train: (N, N) symmetric PSD kernel.
+        y_train: (N,) or (N, O) targets.
+        ridges: scalar or (R,) ridges, all > 0, in the `ridge_fit` convention.
+
+    Returns:
+        `RiskEstimates`.
+
+    Warns:
+        RuntimeWarning when an estimator's minimum lies at the first or last ridge of a grid of
+        several: the true minimiser may lie outside it; extend the grid.
+    """
+    r = np.atleast_1d(_checks.nonnegative("ridges", ridges))
+    if np.any(r <= 0):
+        raise ValueError(
+            _checks.NOT_POSITIVE.format(name="ridges", value=ridges)
+            + " Leave-one-out and GCV are 0/0 at ridge 0 for an interpolating fit."
+        )
+    k = _checks.square_kernel("k_train", k_train)
+    n = k.shape[0]
+    y = _checks.targets("y_train", y_train, n=n, kname="k_train", kshape=k.shape)
+    w, v = eigh_descending(k)
+    z = v.T @ y  # (N, O)
+    n_out = y.shape[1]
+
+    shrink = r[:, None] / (w[None, :] + r[:, None])  # (R, N): eigenvalues of I − H
+    resid = np.einsum("nk,rk,ko->rno", v, shrink, z)  # (I − H) y
+    one_minus_hii = (v**2) @ shrink.T  # (N, R): diag(I − H)
+    loo = np.mean((resid / one_minus_hii.T[:, :, None]) ** 2, axis=(1, 2))
+    gcv = np.mean(resid**2, axis=(1, 2)) / np.mean(shrink, axis=1) ** 2
+
+    lam = r / n
+    inv = 1.0 / (w[None, :] / n + lam[:, None])  # (R, N): eigenvalues of (K/N + λI)⁻¹
+    kare = (inv**2 @ np.sum(z**2, axis=1)) / (n * n_out) / np.mean(inv, axis=1) ** 2
+
+    best = {}
+    for name, values in (("loo", loo), ("gcv", gcv), ("kare", kare)):
+        i = int(np.argmin(values))
+        best[name] = float(r[i])
+        if r.size > 1 and i in (0, r.size - 1):
+            warnings.warn(
+                f"The {name.upper()} minimum lies at the {'first' if i == 0 else 'last'} ridge "
+                f"of `ridges` ({r[i]:.3g}); the minimiser may lie outside the grid. Extend "
+                "`ridges`.",
+                RuntimeWarning,
+                stacklevel=2,
+            )
+    return RiskEstimates(ridges=r, loo=loo, gcv=gcv, kare=kare, best=best)
