@@ -1,5 +1,7 @@
 """Analysis: everything that turns a kernel matrix into answers."""
 
+from .forecast import Forecast as Forecast
+from .forecast import forecast as forecast
 from .ridge import RidgeFit as RidgeFit
 from .ridge import ridge_fit as ridge_fit
 from .risk import RiskEstimates as RiskEstimates

@@ -149,8 +149,12 @@ def positive_int(name: str, value) -> int:
 def sorted_times(name: str, values, *, integer: bool) -> np.ndarray:
     """A 1-D, non-decreasing array of values >= 0; an int ``S`` means ``0, 1, ..., S``."""
     if np.ndim(values) == 0 and integer:
-        s = positive_int(name, values) if values != 0 else 0
-        return np.arange(s + 1)
+        if isinstance(values, bool) or not isinstance(values, int | np.integer) or values < 0:
+            raise ValueError(
+                f"`{name}` must be a whole number S >= 0 (meaning 0, 1, ..., S) or a sorted 1-D "
+                f"array, got {values!r}."
+            )
+        return np.arange(int(values) + 1)
     arr = finite_array(name, values, ndim=(1,))
     if arr.size == 0:
         raise ValueError(f"`{name}` is empty. Pass at least one value.")

@@ -1,0 +1,340 @@
+"""Lazy-training forecast: what gradient descent on the linearized model does, without training.
+
+A network linearized around its initial parameters θ₀, ``f_lin(θ, x) = f(θ₀, x) + J(x)(θ − θ₀)``,
+trained by gradient descent moves in function space through its (fixed) neural tangent kernel
+``Θ(x, x') = J(x) J(x')ᵀ`` (Jacot, Gabriel & Hongler, NeurIPS 2018, arXiv:1806.07572). Wide
+networks trained with small learning rates stay close to it (Lee et al., "Wide Neural Networks of
+Any Depth Evolve as Linear Models Under Gradient Descent", NeurIPS 2019, arXiv:1902.06720).
+
+Convention (followed exactly). Loss over the N training examples,
+
+    mse:            L = (1/N) Σ_i ½‖f(x_i) − y_i‖²          (summed over outputs)
+    cross-entropy:  L = (1/N) Σ_i −Σ_a y_ia log softmax(f(x_i))_a
+
+and one step ``θ ← θ − lr ∇_θ L``. In function space one step is
+
+    f ← f − (lr/N) Θ g(f),        f_test ← f_test − (lr/N) Θ(test, train) g(f),
+
+with ``g(f) = f − y`` (mse) or ``softmax(f) − y`` (cross-entropy). ``flow=True`` is gradient flow
+``df/dt = −(1/N) Θ g(f)`` at times ``t = lr·steps``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import warnings
+from typing import Literal
+
+import numpy as np
+import scipy.integrate
+import scipy.special
+
+from . import _checks
+from ._eig import eigh_descending
+from ._result import Result
+
+Loss = Literal["mse", "cross-entropy"]
+
+NON_LAZY = (
+    "The observed training loss departs from the linearized forecast by {gap:.1%} (> {tol:.0%}) "
+    "at step {step}: this run is not in the lazy (linearized) regime, and the forecast does not "
+    "describe it. A wider network or a smaller learning rate brings it closer."
+)
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
+class Forecast(Result):
+    """Predicted trajectory of the linearized model.
+
+    Fields:
+        steps: (T,) gradient steps requested.
+        times: (T,) ``lr·steps``, the gradient-flow time.
+        train_outputs: (T, N, O) outputs on the training set.
+        test_outputs: (T, M, O) outputs on the test set, or None.
+        train_loss: (T,) loss (in the module's convention) on the training set.
+        test_loss: (T,) loss on the test set, or None without ``y_test``.
+        train_accuracy, test_accuracy: (T,) fraction with ``argmax f == label``, for
+            classification targets; else None.
+        label_format: how the targets were read: "one-hot", "integer" (converted to one-hot) or
+            None (regression targets).
+        loss: "mse" or "cross-entropy".
+        flow: True for gradient flow.
+        lr: the learning rate.
+        max_stable_lr: ``2N / λ_max(Θ)``: above it gradient descent on the mse loss diverges
+            along the top eigenvector.
+    """
+
+    steps: np.ndarray
+    times: np.ndarray
+    train_outputs: np.ndarray
+    test_outputs: np.ndarray | None
+    train_loss: np.ndarray
+    test_loss: np.ndarray | None
+    train_accuracy: np.ndarray | None
+    test_accuracy: np.ndarray | None
+    label_format: _checks.LabelFormat | None
+    loss: Loss
+    flow: bool
+    lr: float
+    max_stable_lr: float
+
+    def departure(self, observed_train_loss, *, tolerance: float = 0.1) -> float:
+        """Largest relative gap ``|L_observed − L_forecast| / L_forecast`` over the steps.
+
+        ``observed_train_loss`` (T,) is the training loss measured at ``steps`` while actually
+        training the network (same loss convention). Warns (RuntimeWarning) when the gap exceeds
+        ``tolerance``: the run is then not lazy and the forecast should not be trusted for it.
+        """
+        obs = _checks.finite_array("observed_train_loss", observed_train_loss, ndim=(1,))
+        if obs.shape != self.train_loss.shape:
+            raise ValueError(
+                f"`observed_train_loss` has shape {obs.shape} but the forecast has "
+                f"{self.train_loss.shape[0]} steps: pass the loss measured at each of `steps`."
+            )
+        rel = np.abs(obs - self.train_loss) / np.maximum(self.train_loss, np.finfo(float).tiny)
+        i = int(np.argmax(rel))
+        if rel[i] > tolerance:
+            warnings.warn(
+                NON_LAZY.format(gap=rel[i], tol=tolerance, step=self.steps[i]),
+                RuntimeWarning,
+                stacklevel=2,
+            )
+        return float(rel[i])
+
+
+def _mode_factors(lam, steps, *, lr, n, flow):
+    """Per eigenvalue and time: the residual decay and ``(lr/N) Σ_{s<t} decay_s`` (T, P) each.
+
+    Discrete: decay ``q^t`` with ``q = 1 − lr·λ/N``; flow: ``exp(−lr·t·λ/N)``. Both integrals
+    equal ``(1 − decay)/λ`` (limit ``lr·t/N`` at λ = 0), evaluated with expm1/log1p so small
+    eigenvalues keep their digits.
+    """
+    x = lr * lam[None, :] / n  # (1, P)
+    t = steps[:, None]
+    if flow:
+        expo = -t * x
+        decay, one_minus = np.exp(expo), -np.expm1(expo)
+    else:
+        safe = x < 1
+        logq = np.log1p(-np.where(safe, x, 0.0))
+        power = np.power(1.0 - x, t.astype(np.int64)) if not np.all(safe) else None
+        decay = np.where(safe, np.exp(t * logq), power if power is not None else 0.0)
+        one_minus = np.where(safe, -np.expm1(t * logq), 1.0 - decay)
+    zero = lam[None, :] == 0
+    integral = np.where(zero, lr * t / n, one_minus / np.where(zero, 1.0, lam[None, :]))
+    return decay, integral
+
+
+def _softmax_residual(f, y):
+    return scipy.special.softmax(f, axis=-1) - y
+
+
+def _mse(f, y):
+    return 0.5 * np.sum((f - y) ** 2, axis=(-2, -1)) / f.shape[-2]
+
+
+def _cross_entropy(f, y):
+    return -np.sum(y * scipy.special.log_softmax(f, axis=-1), axis=(-2, -1)) / f.shape[-2]
+
+
+def _accuracy(f, y):
+    return np.mean(np.argmax(f, axis=-1) == np.argmax(y, axis=-1), axis=-1)
+
+
+def _flat(k_cross, *, n_out: int, full: bool):
+    """A test-train kernel as the matrix acting on the training layout."""
+    if not full:
+        return k_cross
+    m, n = k_cross.shape[:2]
+    return k_cross.transpose(0, 2, 1, 3).reshape(m * n_out, n * n_out)
+
+
+def _mse_closed_form(kmat, kx, r0, steps, *, lr, n, flow):
+    """Residuals (T, P, C) and test-output changes (T, M', C) by one eigendecomposition."""
+    lam, v = eigh_descending(kmat)
+    decay, integral = _mode_factors(lam, steps, lr=lr, n=n, flow=flow)
+    c0 = v.T @ r0  # (P, C)
+    resid = np.einsum("pk,tk,kc->tpc", v, decay, c0)
+    delta = None if kx is None else -np.einsum("mk,tk,kc->tmc", kx @ v, integral, c0)
+    return resid, delta, lam[0]
+
+
+def _cross_entropy_path(kmat, kx, f0, y, steps, *, lr, n, flow, ode_rtol):
+    """Train outputs (T, N, O) and ``∫₀ᵗ g`` (flow) or ``lr·Σ_{s<t} g_s`` (T, N, O), cross-entropy.
+
+    The test outputs follow as ``f_test,0 − (1/N) Θ(test, train) ∫ g``.
+    """
+    shape = f0.shape
+
+    def kernel_times(g):
+        return (kmat @ g.reshape(kmat.shape[0], -1)).reshape(shape)
+
+    if flow:
+        size = f0.size
+
+        def rhs(_, state):
+            g = _softmax_residual(state[:size].reshape(shape), y)
+            return np.concatenate([-kernel_times(g).ravel() / n, g.ravel()])
+
+        times = lr * steps.astype(np.float64)
+        sol = scipy.integrate.solve_ivp(
+            rhs, (0.0, float(times[-1])), np.concatenate([f0.ravel(), np.zeros(size)]),
+            method="DOP853", t_eval=times, rtol=ode_rtol, atol=ode_rtol * 1e-3,
+        )
+        if not sol.success:
+            raise RuntimeError(f"The ODE solver failed: {sol.message}")
+        states = sol.y.T
+        return states[:, :size].reshape(-1, *shape), states[:, size:].reshape(-1, *shape)
+    f, summed = f0.copy(), np.zeros_like(f0)
+    outs, sums = [], []
+    want = iter(steps.tolist())
+    target = next(want)
+    for s in range(int(steps[-1]) + 1):
+        while target == s:
+            outs.append(f.copy())
+            sums.append(summed.copy())
+            target = next(want, None)
+        g = _softmax_residual(f, y)
+        f = f - (lr / n) * kernel_times(g)
+        summed = summed + lr * g  # lr·Σ_{s<t} g_s, the discrete counterpart of ∫ g dt
+    return np.stack(outs), np.stack(sums)
+
+
+def forecast(
+    k_train,
+    y_train,
+    f0_train,
+    *,
+    lr: float,
+    steps,
+    k_test_train=None,
+    f0_test=None,
+    y_test=None,
+    loss: Loss = "mse",
+    flow: bool = False,
+    ode_rtol: float = 1e-9,
+) -> Forecast:
+    """Forecast gradient descent (or flow) on the linearized model from its kernel.
+
+    See the module docstring for the loss and step convention. For ``loss="mse"`` every step
+    comes from one eigendecomposition ``Θ = V Λ Vᵀ``: the residual ``r = f − y`` evolves as
+    ``V (1 − lr Λ/N)^t Vᵀ r₀`` (flow: ``V exp(−t Λ/N) Vᵀ r₀``) and the test outputs as
+    ``f_test,0 − Θ(test, train) V ((1 − decay_t)/Λ) Vᵀ r₀``, the closed-form sum over past steps
+    (Lee et al., NeurIPS 2019, arXiv:1902.06720, eqs. for the linearized dynamics). For
+    ``loss="cross-entropy"`` the function-space map is iterated (discrete, exact for the
+    linearized model) or integrated by ``scipy.integrate.solve_ivp`` (DOP853, ``rtol=ode_rtol``).
+
+    Args:
+        k_train: (N, N) kernel, taken as ``K ⊗ I_O`` (the same kernel for every output, no
+            cross-output terms), or the full (N, N, O, O) kernel ``Θ[i, j, a, b]``.
+        y_train: targets: (N,) or (N, O) values, (N,) integer labels in ``[0, O)`` (converted to
+            one-hot) or (N, O) one-hot. Cross-entropy needs labels (integer or one-hot).
+        f0_train: (N,) or (N, O) outputs of the network at initialization.
+        lr: learning rate > 0.
+        steps: an int S (meaning 0, 1, ..., S) or a sorted (T,) array of step counts >= 0
+            (whole numbers unless ``flow``).
+        k_test_train: optional (M, N) (or (M, N, O, O), matching ``k_train``) test-train kernel.
+        f0_test: (M,) or (M, O) initial test outputs; required with ``k_test_train``.
+        y_test: optional test targets, in the same format as ``y_train``.
+        loss: "mse" or "cross-entropy".
+        flow: gradient flow at times ``lr·steps`` instead of discrete steps.
+        ode_rtol: relative tolerance of the ODE solver (cross-entropy flow only).
+
+    Returns:
+        `Forecast`.
+
+    Warns:
+        RuntimeWarning if ``lr`` exceeds ``max_stable_lr = 2N/λ_max`` (mse, discrete): gradient
+        descent then diverges along the top eigenvector and so would the real network. For
+        cross-entropy the curvature of the loss in the outputs is at most ½ (Gershgorin bound on
+        ``diag(p) − ppᵀ``), so the warning comes above ``2·max_stable_lr``.
+    """
+    if loss not in ("mse", "cross-entropy"):
+        raise ValueError(f"`loss` must be 'mse' or 'cross-entropy', got {loss!r}.")
+    lr = _checks.positive("lr", lr)
+    steps = _checks.sorted_times("steps", steps, integer=not flow)
+    f0 = _checks.finite_array("f0_train", f0_train, ndim=(1, 2))
+    n = f0.shape[0]
+    f0 = f0.reshape(n, -1)
+    n_out = f0.shape[1]
+    kmat, block = _checks.kernel_to_flat("k_train", k_train, num_outputs=n_out)
+    kshape = np.shape(k_train)
+    if kmat.shape[0] != (n if block else n * n_out):
+        raise ValueError(_checks.ROWS_MISMATCH.format(
+            name="f0_train", rows=n, kname="k_train", kshape=kshape))
+    onehot, fmt = _checks.labels("y_train", y_train, n=n, num_classes=n_out, kname="k_train",
+                                 kshape=kshape)
+    y = onehot if onehot is not None else _checks.targets(
+        "y_train", y_train, n=n, kname="k_train", kshape=kshape)
+    _checks.same_outputs("y_train", y, want=n_out, ref="`f0_train`")
+    if loss == "cross-entropy" and fmt is None:
+        raise ValueError(
+            "`loss='cross-entropy'` needs classification targets: `y_train` must be (N,) "
+            "integer labels or (N, O) one-hot rows. Got real-valued targets; use loss='mse'."
+        )
+
+    kx = f0_t = y_t = None
+    if (k_test_train is None) != (f0_test is None):
+        raise ValueError(
+            "`k_test_train` and `f0_test` go together: the test outputs evolve from `f0_test` "
+            "through `k_test_train`. Pass both or neither."
+        )
+    if y_test is not None and k_test_train is None:
+        raise ValueError("`y_test` needs `k_test_train` and `f0_test` to forecast test outputs.")
+    if k_test_train is not None:
+        tail = () if block else (n_out, n_out)
+        kx_raw = _checks.cross_kernel("k_test_train", k_test_train, n=n, kname="k_train",
+                                      tail=tail)
+        m = kx_raw.shape[0]
+        f0_t = _checks.targets("f0_test", f0_test, n=m, kname="k_test_train",
+                               kshape=kx_raw.shape)
+        _checks.same_outputs("f0_test", f0_t, want=n_out, ref="`f0_train`")
+        kx = _flat(kx_raw, n_out=n_out, full=not block)
+        if y_test is not None:
+            oh_t, _ = _checks.labels("y_test", y_test, n=m, num_classes=n_out,
+                                     kname="k_test_train", kshape=kx_raw.shape)
+            y_t = oh_t if fmt is not None and oh_t is not None else _checks.targets(
+                "y_test", y_test, n=m, kname="k_test_train", kshape=kx_raw.shape)
+            _checks.same_outputs("y_test", y_t, want=n_out, ref="`f0_train`")
+
+    lam_max = float(eigh_descending(kmat, vectors=False)[0]) if loss != "mse" else None
+    if loss == "mse":
+        cols = kmat.shape[0]
+        resid, delta, lam_max = _mse_closed_form(
+            kmat, kx, (f0 - y).reshape(cols, -1), steps, lr=lr, n=n, flow=flow)
+        train = y[None] + resid.reshape(-1, n, n_out)
+        test = None if kx is None else f0_t[None] + delta.reshape(-1, *f0_t.shape)
+        loss_fn = _mse
+    else:
+        train, summed = _cross_entropy_path(
+            kmat, kx, f0, y, steps, lr=lr, n=n, flow=flow, ode_rtol=ode_rtol)
+        test = None if kx is None else f0_t[None] - np.einsum(
+            "mp,tpc->tmc", kx, summed.reshape(len(steps), kmat.shape[0], -1)
+        ).reshape(-1, *f0_t.shape) / n
+        loss_fn = _cross_entropy
+    max_lr = 2.0 * n / lam_max if lam_max > 0 else float("inf")
+    limit = max_lr if loss == "mse" else 2.0 * max_lr
+    if not flow and lr > limit:
+        warnings.warn(
+            f"`lr`={lr:g} exceeds the stability limit {limit:.4g} (2N/λ_max = {max_lr:.4g}"
+            f"{'' if loss == 'mse' else ', doubled for cross-entropy'}): gradient descent "
+            "diverges along the top kernel eigenvector, and the forecast (like the training run) "
+            "blows up. Use a smaller learning rate.",
+            RuntimeWarning,
+            stacklevel=2,
+        )
+    return Forecast(
+        steps=steps,
+        times=lr * steps.astype(np.float64),
+        train_outputs=train,
+        test_outputs=test,
+        train_loss=loss_fn(train, y),
+        test_loss=None if y_t is None else loss_fn(test, y_t),
+        train_accuracy=None if fmt is None else _accuracy(train, y),
+        test_accuracy=None if fmt is None or y_t is None else _accuracy(test, y_t),
+        label_format=fmt,
+        loss=loss,
+        flow=bool(flow),
+        lr=lr,
+        max_stable_lr=max_lr,
+    )
