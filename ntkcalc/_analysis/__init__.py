@@ -1,7 +1,14 @@
 """Analysis: everything that turns a kernel matrix into answers."""
 
+from .alignment import TaskSpectrum as TaskSpectrum
+from .alignment import alignment as alignment
+from .alignment import cka as cka
+from .alignment import kernel_distance as kernel_distance
+from .alignment import task_spectrum as task_spectrum
 from .forecast import Forecast as Forecast
 from .forecast import forecast as forecast
+from .learning_curve import LearningCurve as LearningCurve
+from .learning_curve import learning_curve as learning_curve
 from .ridge import RidgeFit as RidgeFit
 from .ridge import ridge_fit as ridge_fit
 from .risk import RiskEstimates as RiskEstimates
