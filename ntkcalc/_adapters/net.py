@@ -52,7 +52,7 @@ class Net:
     Fields:
         apply: ``apply(params, x) -> outputs``.
         params: the pytree the kernel differentiates.
-        state: frozen data passed to ``call`` but never differentiated (``None`` for plain functions).
+        state: frozen data passed to ``call``, never differentiated (``None`` for plain functions).
         call: ``call(params, state, x) -> outputs``; the function the engine compiles. Two Nets that
             share ``call`` (e.g. ``net.replace(params=...)``) share compiled kernels.
     """
@@ -65,12 +65,10 @@ class Net:
     def __init__(self, apply: Callable[[PyTree, Any], Any], params: PyTree, *, name: str = "net"):
         if not callable(apply):
             raise TypeError(
-                f"`apply` must be a function apply(params, x) -> outputs, got {type(apply).__name__}."
+                "`apply` must be a function apply(params, x) -> outputs, got "
+                f"{type(apply).__name__}."
             )
-        if getattr(apply, "_is_ntkcalc_call", False):
-            call = apply
-        else:
-            call = functools.partial(_call_plain, apply)
+        call = functools.partial(_call_plain, apply)
         object.__setattr__(self, "call", call)
         object.__setattr__(self, "params", params)
         object.__setattr__(self, "state", None)

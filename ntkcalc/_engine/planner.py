@@ -1,0 +1,349 @@
+"""The planner: which method for which leaf, what block size, and what it will cost.
+
+`plan` traces the model once at abstract shapes (no compute), analyses which layer consumes each
+parameter, costs every method with `cost`, and picks the cheapest that fits the memory budget.
+`ntkcalc.ntk(..., method="auto")` follows the plan; printing it answers "why is this slow?".
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+import jax
+import numpy as np
+
+from .._adapters.net import Net
+from . import cost as C
+from . import structured as st
+from .checks import (
+    as_compute,
+    check_finite_tree,
+    check_inputs,
+    check_net,
+    check_pair,
+    compute_dtype,
+    output_size,
+)
+from .options import METHODS, OUTPUTS, basis_size, check_choice, tile_shape
+from .program import Program
+from .select import ParamFilter, select
+
+
+@dataclasses.dataclass(frozen=True)
+class LeafCost:
+    """One row of a plan: a differentiated leaf, how it is handled and what it costs."""
+
+    name: str
+    shape: tuple[int, ...]
+    rule: str  # dense, conv, scale, bias (×uses), fallback, unused
+    representation: str  # factored, dense (from the rule), jacobian (fallback), unused, jvp
+    flops: float  # total over the whole kernel
+    bytes_per_example: float  # factor bytes held per example
+    note: str = ""
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class Plan:
+    """What `ntkcalc.ntk` will do for this request. Print it for a readable table.
+
+    Fields:
+        method: the method chosen ("structured", "jacobian" or "jvp").
+        outputs: outputs mode; n1, n2: examples; symmetric: K(X, X) with mirrored tiles.
+        num_outputs: O; dtype: the kernel dtype.
+        block: examples per tile side; cache_factors: whether every block's factors are kept.
+        leaves: per-leaf rows for the chosen method.
+        flops, peak_bytes, seconds: estimated totals (seconds from `machine_rate`).
+        estimates: {method: estimated seconds} for every method that was costed.
+        memory: the byte budget the block size was chosen for.
+        program: the compiled-computation description the tile layer runs.
+    """
+
+    method: str
+    outputs: str
+    n1: int
+    n2: int
+    symmetric: bool
+    num_outputs: int
+    dtype: np.dtype
+    block: int
+    cache_factors: bool
+    leaves: tuple[LeafCost, ...]
+    flops: float
+    peak_bytes: float
+    seconds: float
+    estimates: dict
+    memory: int
+    rate: float
+    program: Program = dataclasses.field(repr=False)
+    group_names: tuple[str, ...] = ("all",)
+
+    @property
+    def tile(self) -> tuple[int, ...]:
+        return tile_shape(self.outputs, self.block, self.block, self.num_outputs)
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return tile_shape(self.outputs, self.n1, self.n2, self.num_outputs)
+
+    def __str__(self) -> str:
+        lines = [
+            f"ntkcalc plan: method={self.method!r}, outputs={self.outputs!r}, kernel {self.shape} "
+            f"{self.dtype}{' (symmetric: upper tiles only)' if self.symmetric else ''}",
+            f"  tiles of {self.block}×{self.block} examples, factors "
+            f"{'cached per block' if self.cache_factors else 'recomputed per tile'}; "
+            f"budget {C.format_bytes(self.memory)}",
+        ]
+        w = max([len(leaf.name) for leaf in self.leaves] + [9])
+        lines.append(f"  {'parameter':<{w}}  {'shape':<16} {'rule':<12} {'as':<10} "
+                     f"{'FLOPs':>13} {'bytes/example':>13}")
+        for leaf in self.leaves:
+            lines.append(
+                f"  {leaf.name:<{w}}  {str(leaf.shape):<16} {leaf.rule:<12} "
+                f"{leaf.representation:<10} {C.format_flops(leaf.flops):>13} "
+                f"{C.format_bytes(leaf.bytes_per_example):>13}"
+                + (f"  ({leaf.note})" if leaf.note else "")
+            )
+        lines.append(
+            f"  total {C.format_flops(self.flops)}, peak ≈ {C.format_bytes(self.peak_bytes)}, "
+            f"≈ {self.seconds:.3g} s at {self.rate / 1e9:.3g} GFLOP/s (measured matmul rate)"
+        )
+        alts = ", ".join(f"{m} ≈ {s:.3g} s" for m, s in sorted(self.estimates.items(),
+                                                                key=lambda kv: kv[1]))
+        lines.append(f"  estimates: {alts}")
+        return "\n".join(lines)
+
+    __repr__ = __str__
+
+
+@dataclasses.dataclass(frozen=True)
+class Request:
+    """A validated kernel request, arrays on the host in the compute dtype."""
+
+    net: Net
+    x1: np.ndarray
+    x2: np.ndarray | None
+    params: object
+    state: object
+    diff: list
+    other: list
+    selection: object
+    num_outputs: int
+    dtype: np.dtype
+
+
+def prepare(net, x1, x2=None, *, outputs="trace", method="auto", params: ParamFilter = None,
+            by_layer: bool = False) -> Request:
+    """Validate everything up front and put the arrays in the compute dtype."""
+    net = check_net(net)
+    check_choice("method", method, METHODS)
+    check_choice("outputs", outputs, OUTPUTS)
+    x1 = check_inputs(x1, "x1")
+    x2 = None if x2 is None else check_inputs(x2, "x2")
+    check_pair(x1, x2)
+    dtype = compute_dtype()
+    check_finite_tree(net.params, "net.params")
+    selection = select(net.params, params, by_layer=by_layer)
+    p = as_compute(net.params, dtype)
+    s = as_compute(net.state, dtype)
+    x1 = _cast_input(x1, dtype)
+    x2 = None if x2 is None else _cast_input(x2, dtype)
+    num_outputs = output_size(net, p, s, x1, "x1")
+    leaves = jax.tree_util.tree_leaves(p)
+    idx = set(selection.indices)
+    diff = [leaf for i, leaf in enumerate(leaves) if i in idx]
+    other = [leaf for i, leaf in enumerate(leaves) if i not in idx]
+    return Request(net, x1, x2, p, s, diff, other, selection, num_outputs, dtype)
+
+
+def _cast_input(x: np.ndarray, dtype) -> np.ndarray:
+    return x.astype(dtype) if np.issubdtype(x.dtype, np.floating) else x
+
+
+def _spec(x):
+    return jax.ShapeDtypeStruct(np.shape(x), x.dtype)
+
+
+def _trace(req: Request, program: Program):
+    x_spec = jax.ShapeDtypeStruct(req.x1.shape[1:], req.x1.dtype)
+    return st.trace_example(
+        program.example_fn,
+        ([_spec(d) for d in req.diff], [_spec(o) for o in req.other],
+         jax.tree_util.tree_map(_spec, req.state), x_spec),
+    )
+
+
+def _blocks(n1: int, n2: int, peak, budget: int) -> int | None:
+    """Largest tile side (examples) whose estimated peak fits ``budget``; padding kept small."""
+    n = max(n1, n2)
+    cap = 1
+    while cap * 2 <= min(n, 4096):
+        cap *= 2
+    candidates = sorted({min(n, 4096)} | {2**k for k in range(int(math.log2(cap)) + 1)},
+                        reverse=True)
+    for b in candidates:
+        if peak(b) <= budget:
+            # Spread the examples evenly over the same number of blocks to limit padding.
+            nb = math.ceil(n / b)
+            return math.ceil(n / nb)
+    return None
+
+
+def plan(net, x1, x2=None, *, outputs="trace", memory=None, method="auto",
+         params: ParamFilter = None, by_layer: bool = False) -> Plan:
+    """Plan a kernel computation without running it.
+
+    Args:
+        net: an `ntkcalc.Net`.
+        x1: (N1, ...) inputs; x2: (N2, ...) inputs or None for K(x1, x1).
+        outputs: "full", "trace", "diagonal" or "logit-sum" (see `ntkcalc.ntk`).
+        memory: peak-memory budget: bytes, a string like "2GB", or None for half of what is
+            available now.
+        method: "auto" (cheapest estimate that fits), "structured", "jacobian" or "jvp".
+        params: parameter filter (regular expression on dotted names, or a predicate).
+
+    Returns:
+        A `Plan`; ``print(plan)`` shows each leaf's rule, FLOPs and bytes, and the totals.
+    """
+    req = prepare(net, x1, x2, outputs=outputs, method=method, params=params, by_layer=by_layer)
+    return plan_request(req, outputs=outputs, memory=memory, method=method)
+
+
+def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
+    budget = C.parse_memory(memory)
+    n1 = req.x1.shape[0]
+    n2 = n1 if req.x2 is None else req.x2.shape[0]
+    sym = req.x2 is None
+    o = req.num_outputs
+    a = basis_size(outputs, o)
+    isz = C.itemsize(req.dtype)
+    sel = req.selection
+    names = [sel.names[i] for i in sel.indices]
+    shapes = [tuple(np.shape(d)) for d in req.diff]
+    sizes = [int(np.prod(s, dtype=np.int64)) for s in shapes]
+    base = Program(req.net.call, jax.tree_util.tree_structure(req.params), sel, outputs, o,
+                   "jacobian", ("dense",) * len(req.diff))
+    closed = _trace(req, base)
+    fwd, acts = C.forward_cost(closed)
+    analysis = st.analyze(closed, len(req.diff))
+    pairs = n1 * (n1 + 1) / 2 if sym else n1 * n2
+    tile_elems = math.prod(tile_shape(outputs, 1, 1, o))
+    rate = C.machine_rate(req.dtype.name)
+    x_bytes = int(np.prod(req.x1.shape[1:], dtype=np.int64)) * req.x1.dtype.itemsize
+
+    candidates = {}
+
+    def finish(name, program, rows, pair_flops, example_flops, example_bytes, transient, pair_tmp):
+        def peak(b):
+            held = 2 * b * example_bytes + b * transient + b * b * (pair_tmp + tile_elems) * isz
+            return held + 2 * b * b * tile_elems * isz
+
+        block = _blocks(n1, n2, peak, budget)
+        if block is None:
+            candidates[name] = (math.inf, peak(1), None, rows, program, False, 0.0)
+            return
+        nb_rows = math.ceil(n1 / block)
+        total_factor_bytes = (n1 + (0 if sym else n2)) * example_bytes
+        cache = total_factor_bytes + peak(block) <= budget
+        evaluations = (n1 + (0 if sym else n2)) if cache else (
+            n1 + (nb_rows * n1 / 2 if sym else nb_rows * n2))
+        flops = pairs * pair_flops + evaluations * example_flops
+        seconds = flops / rate
+        candidates[name] = (seconds, peak(block) + (total_factor_bytes if cache else 0), block,
+                            rows, program, cache, flops)
+
+    backprop = fwd + 2.0 * a * fwd  # one forward, A backward passes
+    transient = a * acts * isz  # VJP residuals and cotangents, per example
+
+    # Jacobian contraction: every leaf dense from the network-wide VJP.
+    if method in ("auto", "jacobian"):
+        rows = []
+        for name, shape, p in zip(names, shapes, sizes, strict=True):
+            rows.append(LeafCost(name, shape, "fallback", "jacobian",
+                                 pairs * C.dense_pair_flops(a, p, outputs), a * p * isz))
+        prog = dataclasses.replace(base, kinds=tuple("dense" for _ in names))
+        finish("jacobian", prog, rows, sum(C.dense_pair_flops(a, p, outputs) for p in sizes),
+               backprop, a * sum(sizes) * isz, transient, 0.0)
+
+    # Structured derivatives: per leaf, factored or dense from its consumer, else fallback.
+    if method in ("auto", "structured"):
+        rows, kinds = [], []
+        pair_flops = example_flops = example_bytes = pair_tmp = 0.0
+        example_flops = backprop
+        for k, (name, shape, p) in enumerate(zip(names, shapes, sizes, strict=True)):
+            rule = analysis.rule(k)
+            uses = analysis.uses[k]
+            dense_pf = C.dense_pair_flops(a, p, outputs)
+            if analysis.unused[k]:
+                rows.append(LeafCost(name, shape, "unused", "unused", 0.0, 0.0,
+                                     "does not affect the outputs"))
+                kinds.append("unused")
+                continue
+            if not uses:
+                rows.append(LeafCost(name, shape, "fallback", "jacobian", pairs * dense_pf,
+                                     a * p * isz, analysis.fallback[k] or ""))
+                kinds.append("dense")
+                pair_flops += dense_pf
+                example_bytes += a * p * isz
+                continue
+            local = sum(2.0 * a * _use_local_flops(u) for u in uses)
+            choice, pf, eb, tmp = "dense", dense_pf, a * p * isz, 0.0
+            if st.factorable(uses):
+                bsz, t, c, r = st.factored_sizes(uses[0])
+                fpf = C.factored_pair_flops(a, bsz, t, c, r, outputs)
+                feb = (bsz * t * c + a * bsz * t * r) * isz
+                # Favour the factored form only when it is cheaper per pair.
+                if fpf < dense_pf:
+                    choice, pf, eb = "factored", fpf, feb
+                    tmp = C.factored_pair_elements(a, bsz, t, outputs)
+            rows.append(LeafCost(name, shape, rule, choice, pairs * pf, eb))
+            kinds.append(choice)
+            pair_flops += pf
+            example_bytes += eb
+            pair_tmp = max(pair_tmp, tmp)
+            if choice == "dense":
+                example_flops += local
+        prog = dataclasses.replace(base, method="structured", kinds=tuple(kinds),
+                                   analysis=analysis)
+        finish("structured", prog, rows, pair_flops, example_flops, example_bytes, transient,
+               pair_tmp)
+
+    # NTK-vector products: per pair, one JVP per output direction.
+    if method in ("auto", "jvp"):
+        p_total = sum(sizes)
+        chunk = int(max(1, min(64, budget // max(1, 8 * p_total * isz))))
+        rows = [LeafCost(n, s, "—", "jvp", 0.0, 0.0) for n, s in zip(names, shapes, strict=True)]
+        prog = dataclasses.replace(base, method="jvp", jvp_chunk=chunk,
+                                   kinds=tuple("dense" for _ in names))
+        groups = len(sel.group_names)
+        jvp_pair = a * 3.0 * fwd * groups
+        finish("jvp", prog, rows, jvp_pair, a * 3.0 * fwd, x_bytes,
+               chunk * (p_total * isz * 3 + acts * isz * 2) / 1, 0.0)
+
+    feasible = {m: v for m, v in candidates.items() if v[2] is not None}
+    if not feasible or (method != "auto" and method not in feasible):
+        smallest = min(v[1] for v in candidates.values())
+        raise MemoryError(
+            f"`memory`={memory!r} ({C.format_bytes(budget)}) is too small for even one 1×1 tile "
+            f"of this kernel: the smallest budget that works is about "
+            f"{C.format_bytes(smallest * 1.25)}. Raise `memory` or choose outputs='trace'."
+        )
+    chosen = min(feasible, key=lambda m: feasible[m][0]) if method == "auto" else method
+    seconds, peak, block, rows, program, cache, flops = feasible[chosen]
+    estimates = {m: v[0] for m, v in candidates.items()}
+    return Plan(chosen, outputs, n1, n2, sym, o, req.dtype, block, cache, tuple(rows), flops,
+                peak, seconds, estimates, budget, rate, program, sel.group_names)
+
+
+def _use_local_flops(u: st.Use) -> float:
+    """FLOPs of one consumer's VJP with respect to its parameter operand (per direction)."""
+    out = math.prod(u.out_aval.shape)
+    if u.rule == "dense":
+        (lc, rc), _ = u.params["dimension_numbers"]
+        shape = u.in_avals[u.operand].shape
+        return 2.0 * out * math.prod(shape[d] for d in (rc if u.operand == 1 else lc))
+    if u.rule == "conv":
+        rhs = u.in_avals[1].shape
+        dn = u.params["dimension_numbers"]
+        return 2.0 * out * math.prod(rhs) / rhs[dn.rhs_spec[0]]
+    return float(out)

@@ -1,0 +1,172 @@
+"""A compiled kernel program: per-example derivative factors of a block, and their contraction.
+
+Every method splits a kernel tile K(X_a, X_b) into two jitted steps, so the tile layer can cache
+factors of a block and reuse them for every tile in its row and column:
+
+- ``factors(diff, other, state, xb)``: per-example derivative representations of the block;
+- ``tile(diff, other, state, fa, fb)``: the ``(groups, *tile)`` kernel of two blocks' factors.
+
+``"jacobian"``: factors are dense per-example Jacobians (one VJP per output direction, vmapped
+over examples), contracted leaf by leaf. ``"structured"``: factors come from the consuming layers
+(see `structured`), dense or factored per leaf. ``"jvp"``: factors are the inputs themselves, and
+the tile is J_a (J_bᵀ u) by one VJP and one JVP per output basis vector u, never forming a
+Jacobian. All three: Novak, Sohl-Dickstein & Schoenholz, ICML 2022, arXiv:2206.08720.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+
+import jax
+import jax.numpy as jnp
+from jax import lax
+
+from . import structured as st
+from .contract import contract
+from .options import basis_size, tile_shape
+from .select import Selection
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class Program:
+    """Static description of one kernel computation (hashable by identity).
+
+    Fields:
+        call: the Net's ``call(params, state, x)``.
+        treedef: params tree structure; ``selection`` says which leaves are differentiated.
+        outputs: outputs mode; num_outputs: O.
+        method: "jacobian", "structured" or "jvp".
+        kinds: per differentiated leaf, "dense", "factored" or "unused".
+        analysis: the structured analysis (method "structured" only).
+        jvp_chunk: basis vectors per lax.map step (method "jvp" only).
+    """
+
+    call: object
+    treedef: object
+    selection: Selection
+    outputs: str
+    num_outputs: int
+    method: str
+    kinds: tuple[str, ...]
+    analysis: st.Analysis | None = None
+    jvp_chunk: int = 8
+
+    # -- the per-example function -------------------------------------------------------------
+    def merge(self, diff, other):
+        sel = set(self.selection.indices)
+        it_d, it_o = iter(diff), iter(other)
+        full = [next(it_d) if i in sel else next(it_o) for i in range(len(diff) + len(other))]
+        return jax.tree_util.tree_unflatten(self.treedef, full)
+
+    def example_fn(self, diff, other, state, x):
+        """f(x) for one example, flattened to (O,)."""
+        out = self.call(self.merge(diff, other), state, x[None])
+        return out.reshape(-1)
+
+    def basis(self, dtype):
+        a = basis_size(self.outputs, self.num_outputs)
+        if self.outputs == "logit-sum":
+            return jnp.ones((1, self.num_outputs), dtype)
+        return jnp.eye(a, dtype=dtype)
+
+    # -- factors --------------------------------------------------------------------------------
+    def factors(self, diff, other, state, xb):
+        if self.method == "jvp":
+            return xb
+        if self.method == "jacobian":
+            return jax.vmap(lambda x: self._jacobian_one(diff, other, state, x))(xb)
+        return jax.vmap(lambda x: self._structured_one(diff, other, state, x))(xb)
+
+    def _jacobian_one(self, diff, other, state, x):
+        out, vjp = jax.vjp(lambda d: self.example_fn(d, other, state, x), list(diff))
+        (jac,) = jax.vmap(vjp)(self.basis(out.dtype))
+        return [j if k != "unused" else None for j, k in zip(jac, self.kinds, strict=True)]
+
+    def _structured_one(self, diff, other, state, x):
+        an = self.analysis
+        fb_pos = [k for k, kind in enumerate(self.kinds) if kind == "dense" and not an.uses[k]]
+        uses = [u for k, kind in enumerate(self.kinds) if kind != "unused" for u in an.uses[k]]
+        state_leaves = jax.tree_util.tree_leaves(state)
+
+        def run(fb_vals, probes):
+            d = list(diff)
+            for pos, val in zip(fb_pos, fb_vals, strict=True):
+                d[pos] = val
+            args = [*d, *other, *state_leaves, x]
+            out, caps = st.eval_with_probes(an, args, probes)
+            return out, caps
+
+        probes0 = {u.path: jnp.zeros(u.out_aval.shape, u.out_aval.dtype) for u in uses}
+        fb0 = [diff[k] for k in fb_pos]
+        out, vjp, caps = jax.vjp(run, fb0, probes0, has_aux=True)
+        fb_jac, cots = jax.vmap(vjp)(self.basis(out.dtype))
+        reps = []
+        fb_iter = iter(fb_jac)
+        for k, kind in enumerate(self.kinds):
+            if kind == "unused":
+                reps.append(None)
+            elif not an.uses[k]:
+                reps.append(next(fb_iter))
+            elif kind == "factored":
+                (u,) = an.uses[k]
+                fac = st.dot_factors if u.rule == "dense" else st.conv_factors
+                reps.append(fac(u, caps[u.path], cots[u.path]))
+            else:
+                reps.append(
+                    st.local_vjp(an.uses[k], diff[k], [caps[u.path] for u in an.uses[k]],
+                                 [cots[u.path] for u in an.uses[k]])
+                )
+        return reps
+
+    # -- tiles ----------------------------------------------------------------------------------
+    def tile(self, diff, other, state, fa, fb):
+        if self.method == "jvp":
+            return self._jvp_tile(diff, other, state, fa, fb)
+        b1 = jax.tree_util.tree_leaves(fa)[0].shape[0]
+        b2 = jax.tree_util.tree_leaves(fb)[0].shape[0]
+        return contract(fa, fb, self.kinds, self.selection.group_index(),
+                        len(self.selection.group_names), self.outputs,
+                        tile_shape(self.outputs, b1, b2, self.num_outputs))
+
+    def _jvp_tile(self, diff, other, state, xa, xb):
+        o, a_dim = self.num_outputs, basis_size(self.outputs, self.num_outputs)
+        logit_sum = self.outputs == "logit-sum"
+        n_a, n_b = xa.shape[0], xb.shape[0]
+        group_of = self.selection.group_index()
+        num_groups = len(self.selection.group_names)
+
+        def f_a(d):
+            out = jax.vmap(self.example_fn, in_axes=(None, None, None, 0))(d, other, state, xa)
+            return out.sum(-1) if logit_sum else out
+
+        def column(m):
+            # Basis vector m = (example j of x_b, output direction b).
+            j, b = m // a_dim, m % a_dim
+            out, vjp = jax.vjp(lambda d: self.example_fn(d, other, state, xb[j]), list(diff))
+            u = jnp.ones_like(out) if logit_sum else jax.nn.one_hot(b, o, dtype=out.dtype)
+            (t,) = vjp(u)
+            cols = []
+            for g in range(num_groups):
+                t_g = [tk if group_of[k] == g else jnp.zeros_like(tk) for k, tk in enumerate(t)]
+                col = jax.jvp(f_a, (list(diff),), (t_g,))[1]  # (n_a,) or (n_a, O)
+                if self.outputs in ("trace", "diagonal"):
+                    col = col[:, b]  # only the matching output: never an O×O block
+                cols.append(col)
+            return jnp.stack(cols)
+
+        size = n_b * a_dim
+        cols = lax.map(column, jnp.arange(size), batch_size=min(self.jvp_chunk, size))
+        cols = jnp.moveaxis(cols, 1, 0)  # (G, n_b·A, n_a[, O])
+        if logit_sum:
+            return jnp.swapaxes(cols, 1, 2)  # (G, n_a, n_b)
+        if self.outputs == "full":
+            return jnp.transpose(cols.reshape(num_groups, n_b, o, n_a, o), (0, 3, 1, 4, 2))
+        diag = jnp.transpose(cols.reshape(num_groups, n_b, o, n_a), (0, 3, 1, 2))  # [g, i, j, a]
+        return diag if self.outputs == "diagonal" else diag.sum(-1)
+
+
+@functools.lru_cache(maxsize=256)
+def compiled(program: Program):
+    """The two jitted steps of ``program``; cached so repeated calls reuse compilations."""
+    return jax.jit(program.factors), jax.jit(program.tile)

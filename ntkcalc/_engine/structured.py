@@ -1,0 +1,340 @@
+"""Structured derivatives: the per-example derivative of each parameter leaf from the layer that
+consumes it, without the network-wide Jacobian.
+
+The per-example function is traced to a jaxpr. For every differentiated leaf we find the
+primitive(s) that consume it, looking through structure-preserving ops applied to the leaf first
+(reshape, transpose, convert, squeeze, expand_dims, broadcast). A *probe*, an added zero, is placed
+on the output y of each consuming primitive, and the primitive's other operands h are captured on
+the forward pass. One VJP per output direction then gives the cotangents g = ∂f_a/∂y of every probe
+at once, and the leaf's derivative follows from the consumer alone: a VJP of
+``w ↦ primitive(h, chain(w))`` at g (rule outputs are exact for any consumer linear in w). For
+``dot_general`` and ``conv_general_dilated`` the derivative can also stay factored as (h, g), whose
+kernel contribution costs activations² rather than parameters (see `contract`).
+
+Rules, per leaf: ``"dense"`` (dot_general), ``"conv"`` (conv_general_dilated, any strides, padding,
+dilation, feature groups), ``"scale"`` (elementwise mul), ``"bias"`` (add), and ``"fallback"``
+(anything else: gather, nonlinear use, control flow, a leaf used as both operands): the Jacobian
+contraction for that leaf only, from the same VJP. A leaf with several uses is structured when
+every use has a rule; its derivative is the sum over uses.
+
+Reference: Novak, Sohl-Dickstein & Schoenholz, "Fast Finite Width Neural Tangent Kernel",
+ICML 2022, arXiv:2206.08720 (structured derivatives).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+from jax import lax
+from jax.extend import core as jcore
+
+from .contract import HIGHEST
+
+PASS_THROUGH = frozenset(
+    {"reshape", "transpose", "convert_element_type", "squeeze", "expand_dims",
+     "broadcast_in_dim", "copy", "copy_p"}
+)
+# Pass-throughs that only permute or relabel entries: inner products survive them.
+PERMUTING = PASS_THROUGH - {"broadcast_in_dim"}
+RULES = {"dot_general": "dense", "conv_general_dilated": "conv", "mul": "scale", "add": "bias"}
+CALLS = frozenset({"jit", "pjit", "closed_call"})
+
+
+@dataclasses.dataclass(frozen=True)
+class Use:
+    """One consumption of a differentiated leaf by a primitive with a rule."""
+
+    leaf: int  # position among the differentiated leaves
+    path: tuple[int, ...]  # equation indices through nested calls
+    operand: int  # which operand of the primitive is the (transformed) leaf
+    chain: tuple  # ((primitive, params), ...) applied to the leaf before use
+    rule: str
+    primitive: object
+    params: dict
+    in_avals: tuple  # abstract values of the primitive's operands (per example)
+    out_aval: object
+
+    @property
+    def permuting(self) -> bool:
+        return all(p.name in PERMUTING for p, _ in self.chain)
+
+
+@dataclasses.dataclass(frozen=True)
+class Analysis:
+    """The traced per-example function; per differentiated leaf, its uses or why it fell back."""
+
+    closed: object  # ClosedJaxpr of f(diff_leaves, other_leaves, state_leaves, x) -> (O,)
+    num_diff: int
+    uses: tuple[tuple[Use, ...], ...]  # per differentiated leaf; empty for fallback/unused
+    fallback: tuple[str | None, ...]  # per leaf: reason for fallback, or None
+    unused: tuple[bool, ...]
+
+    def rule(self, leaf: int) -> str:
+        if self.unused[leaf]:
+            return "unused"
+        if self.fallback[leaf] is not None:
+            return "fallback"
+        rules = sorted({u.rule for u in self.uses[leaf]})
+        n = len(self.uses[leaf])
+        return "+".join(rules) + (f"×{n}" if n > 1 else "")
+
+
+def _has_rule(eqn, operand: int) -> bool:
+    name = eqn.primitive.name
+    if name == "conv_general_dilated":
+        return operand == 1 and eqn.params["batch_group_count"] == 1
+    return name in RULES
+
+
+def _sub_jaxpr(eqn):
+    p = eqn.params
+    if "jaxpr" in p:
+        j = p["jaxpr"]
+    elif "call_jaxpr" in p:
+        j = p["call_jaxpr"]
+    else:
+        return None
+    return j if isinstance(j, jcore.ClosedJaxpr) else jcore.ClosedJaxpr(j, ())
+
+
+def analyze(closed, num_diff: int) -> Analysis:
+    """Find the consumers of the first ``num_diff`` inputs of ``closed``."""
+    uses: list[list[Use]] = [[] for _ in range(num_diff)]
+    fallback: list[str | None] = [None] * num_diff
+    touched = [False] * num_diff
+
+    def fail(leaf, why):
+        touched[leaf] = True
+        if fallback[leaf] is None:
+            fallback[leaf] = why
+
+    def walk(jaxpr, derived: dict, prefix: tuple[int, ...]):
+        # derived: var -> (leaf, chain)
+        for i, eqn in enumerate(jaxpr.eqns):
+            ins = [derived.get(v) if isinstance(v, jcore.Var) else None for v in eqn.invars]
+            hits = [(k, d) for k, d in enumerate(ins) if d is not None]
+            if not hits:
+                continue
+            name = eqn.primitive.name
+            leaves = {d[0] for _, d in hits}
+            if name in PASS_THROUGH and len(hits) == 1 and hits[0][0] == 0:
+                leaf, chain = hits[0][1]
+                derived[eqn.outvars[0]] = (leaf, chain + ((eqn.primitive, dict(eqn.params)),))
+                continue
+            if len(hits) == 1 and _has_rule(eqn, hits[0][0]):
+                k, (leaf, chain) = hits[0]
+                touched[leaf] = True
+                uses[leaf].append(
+                    Use(leaf, prefix + (i,), k, chain, RULES[name], eqn.primitive,
+                        dict(eqn.params), tuple(v.aval for v in eqn.invars), eqn.outvars[0].aval)
+                )
+                continue
+            sub = _sub_jaxpr(eqn) if name in CALLS else None
+            if sub is not None:
+                inner = {}
+                for v_in, d in zip(sub.jaxpr.invars, ins, strict=True):
+                    if d is not None:
+                        if d[1]:
+                            # A transformed leaf entering a call: the chain would cross it.
+                            fail(d[0], f"transformed parameter passed into `{name}`")
+                        else:
+                            inner[v_in] = d
+                walk(sub.jaxpr, inner, prefix + (i,))
+                for v_out in sub.jaxpr.outvars:
+                    if isinstance(v_out, jcore.Var) and v_out in inner:
+                        fail(inner[v_out][0], f"parameter returned from `{name}`")
+                continue
+            for leaf in leaves:
+                if len(hits) > 1 and name in RULES:
+                    fail(leaf, f"`{name}` with the parameter in more than one operand")
+                else:
+                    fail(leaf, f"consumed by `{name}`")
+        for v in jaxpr.outvars:
+            if isinstance(v, jcore.Var) and v in derived:
+                fail(derived[v][0], "parameter is an output")
+
+    walk(closed.jaxpr, {v: (k, ()) for k, v in enumerate(closed.jaxpr.invars[:num_diff])}, ())
+    final_uses = tuple(tuple(u) if fallback[k] is None else () for k, u in enumerate(uses))
+    unused = tuple(not touched[k] for k in range(num_diff))
+    return Analysis(closed, num_diff, final_uses, tuple(fallback), unused)
+
+
+# -- evaluation with probes --------------------------------------------------------------------
+
+
+def bind(prim, params: dict, *args):
+    """``prim.bind`` with the bind parameters of an equation (both JAX conventions)."""
+    bp = prim.get_bind_params(params)
+    if isinstance(bp, tuple):
+        subfuns, bp = bp
+        return prim.bind(*subfuns, *args, **bp)
+    return prim.bind(*args, **bp)
+
+
+def _eval(jaxpr, consts, args, probes: dict, captures: dict, prefix: tuple[int, ...]):
+    env = {}
+
+    def read(v):
+        return v.val if isinstance(v, jcore.Literal) else env[v]
+
+    for v, c in zip(jaxpr.constvars, consts, strict=True):
+        env[v] = c
+    for v, a in zip(jaxpr.invars, args, strict=True):
+        env[v] = a
+    probed_prefixes = {p[: len(prefix) + 1] for p in probes}
+    for i, eqn in enumerate(jaxpr.eqns):
+        path = prefix + (i,)
+        invals = [read(v) for v in eqn.invars]
+        if path in probes:
+            out = bind(eqn.primitive, eqn.params, *invals)
+            captures[path] = invals
+            outs = [out + probes[path]]
+        elif path in probed_prefixes and len(path) < max(len(p) for p in probes):
+            sub = _sub_jaxpr(eqn)
+            outs = _eval(sub.jaxpr, sub.consts, invals, probes, captures, path)
+        else:
+            with eqn.ctx.manager:
+                out = bind(eqn.primitive, eqn.params, *invals)
+            outs = out if eqn.primitive.multiple_results else [out]
+        for v, o in zip(eqn.outvars, outs, strict=True):
+            if not isinstance(v, jcore.DropVar):
+                env[v] = o
+    return [read(v) for v in jaxpr.outvars]
+
+
+def eval_with_probes(analysis: Analysis, args, probes: dict):
+    """Evaluate the traced function; returns (outputs (O,), {path: operands of the consumer})."""
+    captures: dict = {}
+    (out,) = _eval(analysis.closed.jaxpr, analysis.closed.consts, args, probes, captures, ())
+    return out, captures
+
+
+# -- per-leaf derivatives from (operands, cotangent) -------------------------------------------
+
+
+def _apply_chain(w, chain):
+    for prim, params in chain:
+        w = bind(prim, params, w)
+    return w
+
+
+def local_vjp(uses: tuple[Use, ...], leaf_value, operands: list, cotangents: list):
+    """Derivative of the outputs w.r.t. one leaf, summed over its uses: one VJP of the consumers.
+
+    operands[u]: the consumer's operands of use u; cotangents[u]: (A, *y.shape).
+    Returns (A, *leaf.shape).
+    """
+
+    def consumers(w):
+        outs = []
+        for u, ops in zip(uses, operands, strict=True):
+            ops = list(ops)
+            ops[u.operand] = _apply_chain(w, u.chain)
+            outs.append(bind(u.primitive, u.params, *ops))
+        return outs
+
+    _, vjp = jax.vjp(consumers, leaf_value)
+    return jax.vmap(lambda *g: vjp(list(g))[0])(*cotangents)
+
+
+def _move(x, src: list[int], dst_first: bool = True):
+    rest = [d for d in range(x.ndim) if d not in src]
+    return jnp.transpose(x, src + rest) if dst_first else jnp.transpose(x, rest + src)
+
+
+def dot_factors(use: Use, operands, cot):
+    """(h (B, T, C), g (A, B, T, R)) of a dot_general consumer. cot: (A, *y.shape)."""
+    (lc, rc), (lb, rb) = use.params["dimension_numbers"]
+    lhs, rhs = operands
+    p_is_rhs = use.operand == 1
+    h = lhs if p_is_rhs else rhs
+    hc, hb = (lc, lb) if p_is_rhs else (rc, rb)
+    pc = rc if p_is_rhs else lc
+    p_nd = use.in_avals[use.operand].ndim
+    hf = [d for d in range(h.ndim) if d not in hc and d not in hb]
+    nb, nhf = len(hb), len(hf)
+    n_pf = p_nd - len(pc) - nb
+    bsize = math.prod(h.shape[d] for d in hb)
+    tsize = math.prod(h.shape[d] for d in hf)
+    csize = math.prod(h.shape[d] for d in hc)
+    h_m = jnp.transpose(h, list(hb) + hf + list(hc)).reshape(bsize, tsize, csize)
+    # Output dims: batch, lhs-free, rhs-free.
+    a = cot.shape[0]
+    ob = list(range(1, 1 + nb))
+    if p_is_rhs:
+        ot = list(range(1 + nb, 1 + nb + nhf))
+        op = list(range(1 + nb + nhf, 1 + nb + nhf + n_pf))
+    else:
+        op = list(range(1 + nb, 1 + nb + n_pf))
+        ot = list(range(1 + nb + n_pf, 1 + nb + n_pf + nhf))
+    rsize = math.prod(cot.shape[d] for d in op)
+    g_m = jnp.transpose(cot, [0] + ob + ot + op).reshape(a, bsize, tsize, rsize)
+    return h_m, g_m
+
+
+def conv_factors(use: Use, operands, cot):
+    """(h (G, T, C), g (A, G, T, R)) of a conv consumer with the kernel as its rhs, from patches.
+
+    ``y[n, s, (grp, o)] = Σ_{c,k} P[n, s, (grp, c), k] W[(c, k), (grp, o)]``, so positions
+    T = (n, s), feature groups are the batch dims B, C = (in-channels per group) × window.
+    """
+    p = use.params
+    lhs, _ = operands
+    dn = p["dimension_numbers"]
+    rhs_shape = use.in_avals[1].shape
+    window = tuple(rhs_shape[d] for d in dn.rhs_spec[2:])
+    patches = lax.conv_general_dilated_patches(
+        lhs, window, p["window_strides"], p["padding"], lhs_dilation=p["lhs_dilation"],
+        rhs_dilation=p["rhs_dilation"], dimension_numbers=dn, precision=HIGHEST,
+    )
+    groups = p["feature_group_count"]
+    out_spec = dn.out_spec
+    # patches follow the output layout; features are (in-channel, window) flattened.
+    pm = _move(patches, [out_spec[1]], dst_first=False)  # (..., F)
+    pm = pm.reshape(-1, groups, pm.shape[-1] // groups)  # (T, G, C)
+    h_m = jnp.transpose(pm, (1, 0, 2))
+    a = cot.shape[0]
+    gm = jnp.moveaxis(cot, 1 + out_spec[1], -1)  # (A, ..., Cout)
+    gm = gm.reshape(a, -1, groups, gm.shape[-1] // groups)  # (A, T, G, R)
+    g_m = jnp.transpose(gm, (0, 2, 1, 3))
+    return h_m, g_m
+
+
+def factored_sizes(use: Use) -> tuple[int, int, int, int]:
+    """(B, T, C, R) of a factorable use, from the abstract shapes alone."""
+    if use.rule == "dense":
+        (lc, rc), (lb, rb) = use.params["dimension_numbers"]
+        p_is_rhs = use.operand == 1
+        h_aval = use.in_avals[1 - use.operand]
+        hc, hb = (lc, lb) if p_is_rhs else (rc, rb)
+        shape = h_aval.shape
+        b = math.prod(shape[d] for d in hb)
+        c = math.prod(shape[d] for d in hc)
+        t = math.prod(shape) // (b * c)
+        r = math.prod(use.out_aval.shape) // (b * t)
+        return b, t, c, r
+    dn = use.params["dimension_numbers"]
+    g = use.params["feature_group_count"]
+    rhs = use.in_avals[1].shape
+    out = use.out_aval.shape
+    cout = out[dn.out_spec[1]]
+    t = math.prod(out) // cout
+    c = math.prod(rhs) // cout
+    return g, t, c, cout // g
+
+
+def factorable(uses: tuple[Use, ...]) -> bool:
+    return len(uses) == 1 and uses[0].rule in ("dense", "conv") and uses[0].permuting
+
+
+def trace_example(fn, args_spec):
+    """ClosedJaxpr of ``fn`` at abstract arguments (no compute)."""
+    return jax.make_jaxpr(fn)(*args_spec)
+
+
+def leaf_bytes(x) -> int:
+    return int(np.prod(x.shape, dtype=np.int64)) * np.dtype(x.dtype).itemsize

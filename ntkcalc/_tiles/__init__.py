@@ -1,0 +1,1 @@
+"""Tiles: blocking a kernel into tiles, running them, and assembling the result."""

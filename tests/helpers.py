@@ -1,0 +1,192 @@
+"""Shared test helpers: the dense reference kernel and a zoo of small models.
+
+The reference is the recipe every structured or blocked method must reproduce: the whole-batch
+Jacobian by `jax.jacrev`, contracted with an einsum, in float64 (common practice; it is the
+definition Θ = J Jᵀ evaluated directly).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Callable
+
+import flax.linen as nn
+import jax
+import jax.numpy as jnp
+import numpy as np
+from flax import nnx
+
+import ntkcalc
+
+RTOL = 1e-10  # float64 kernels against the dense reference
+
+
+def reference_full(net: ntkcalc.Net, x1, x2=None, *, params=None) -> np.ndarray:
+    """Θ[i, j, a, b] from the whole-batch Jacobian (jax.jacrev) and an einsum, float64."""
+    x2 = x1 if x2 is None else x2
+    f = lambda p, x: net.apply(p, x).reshape(x.shape[0], -1)
+    j1 = jax.tree_util.tree_leaves(jax.jacrev(f)(net.params, x1))
+    j2 = jax.tree_util.tree_leaves(jax.jacrev(f)(net.params, x2))
+    names = ntkcalc._engine.select.leaf_names(net.params)
+    k = 0.0
+    for name, a, b in zip(names, j1, j2, strict=True):
+        if params is not None and not params(name):
+            continue
+        a = a.reshape(a.shape[0], a.shape[1], -1)
+        b = b.reshape(b.shape[0], b.shape[1], -1)
+        k = k + jnp.einsum("iap,jbp->ijab", a, b, precision="highest")
+    return np.asarray(k)
+
+
+def reduce_mode(full: np.ndarray, outputs: str) -> np.ndarray:
+    """Each outputs mode from the full kernel, by its definition."""
+    if outputs == "full":
+        return full
+    if outputs == "trace":
+        return np.einsum("ijaa->ij", full)
+    if outputs == "diagonal":
+        return np.einsum("ijaa->ija", full)
+    return full.sum((2, 3))  # logit-sum: Θ of Σ_a f_a
+
+
+def assert_close(got, want, rtol=RTOL):
+    got, want = np.asarray(got), np.asarray(want)
+    assert got.shape == want.shape, (got.shape, want.shape)
+    scale = np.max(np.abs(want))
+    err = np.max(np.abs(got - want))
+    assert err <= rtol * scale, f"max abs error {err:.3e} > {rtol:.0e} × {scale:.3e}"
+
+
+def f64(tree):
+    return jax.tree_util.tree_map(
+        lambda a: a.astype(np.float64) if jnp.issubdtype(a.dtype, jnp.floating) else a, tree
+    )
+
+
+# -- the model zoo ------------------------------------------------------------------------------
+
+
+class MLP(nn.Module):
+    width: int = 12
+    out: int = 3
+
+    @nn.compact
+    def __call__(self, x):
+        x = nn.relu(nn.Dense(self.width)(x))
+        x = nn.tanh(nn.Dense(self.width)(x))
+        return nn.Dense(self.out)(x)
+
+
+class CNN(nn.Module):
+    @nn.compact
+    def __call__(self, x):
+        x = nn.relu(nn.Conv(4, (3, 3), strides=(2, 2))(x))
+        x = nn.avg_pool(x, (2, 2), strides=(1, 1))
+        x = nn.relu(nn.Conv(6, (3, 3), padding="VALID", kernel_dilation=(2, 1))(x))
+        x = nn.max_pool(x, (2, 2), strides=(2, 2))
+        x = nn.Conv(6, (2, 2), feature_group_count=6)(x)  # depthwise
+        return nn.Dense(3)(x.reshape(x.shape[0], -1))
+
+
+class ResBlockLinen(nn.Module):
+    @nn.compact
+    def __call__(self, x, train: bool = False):
+        h = nn.Dense(8)(x)
+        y = nn.BatchNorm(use_running_average=not train)(h)
+        y = nn.relu(nn.Dense(8)(y))
+        return nn.Dense(2)(h + y)
+
+
+class ResBlockNNX(nnx.Module):
+    def __init__(self, rngs):
+        self.inp = nnx.Linear(5, 8, rngs=rngs)
+        self.bn = nnx.BatchNorm(8, rngs=rngs)
+        self.mid = nnx.Linear(8, 8, rngs=rngs)
+        self.drop = nnx.Dropout(0.5, rngs=rngs)
+        self.out = nnx.Linear(8, 2, rngs=rngs)
+
+    def __call__(self, x):
+        h = self.inp(x)
+        y = nnx.relu(self.mid(self.bn(h)))
+        return self.out(self.drop(h + y))
+
+
+class AttentionBlock(nn.Module):
+    """LayerNorm + multi-head self-attention + MLP on (batch, tokens, features)."""
+
+    @nn.compact
+    def __call__(self, x):
+        h = nn.LayerNorm()(x)
+        h = nn.MultiHeadDotProductAttention(num_heads=2, qkv_features=8)(h, h)
+        x = x + h
+        h = nn.LayerNorm()(x)
+        h = nn.Dense(4)(nn.gelu(nn.Dense(8)(h)))
+        return nn.Dense(2)(h.mean(axis=1))
+
+
+class TokenModel(nn.Module):
+    """Integer tokens → embedding → mean pool → dense: outputs (batch, T, V) flattened."""
+
+    @nn.compact
+    def __call__(self, tokens):
+        e = nn.Embed(11, 6)(tokens)
+        return nn.Dense(3)(nn.tanh(e))  # (batch, T, 3)
+
+
+def shared_weight_apply(params, x):
+    """One weight used twice in a forward pass (and once transposed)."""
+    w = params["w"]
+    h = jnp.tanh(x @ w + params["b"])
+    h = jnp.tanh(h @ w.T)
+    return h @ params["v"]
+
+
+@dataclasses.dataclass
+class Case:
+    name: str
+    make: Callable[[], ntkcalc.Net]
+    x: Callable[[np.random.Generator, int], np.ndarray]
+
+
+def _linen(module, x_example, **kwargs):
+    variables = module.init(jax.random.key(0), x_example, **kwargs)
+    if "batch_stats" in variables:  # non-trivial running statistics
+        stats = jax.tree_util.tree_map(lambda s: s + 0.3, variables["batch_stats"])
+        variables = {**variables, "batch_stats": stats}
+    return ntkcalc.Net.from_linen(module, f64(variables), **kwargs)
+
+
+def _nnx_res():
+    model = ResBlockNNX(nnx.Rngs(0))
+    model.bn.mean[...] = model.bn.mean[...] + 0.2
+    return _nnx64(model)
+
+
+def _nnx64(model):
+    net = ntkcalc.Net.from_nnx(model)
+    return net.replace(params=f64(net.params), state=f64(net.state))
+
+
+def _shared():
+    k = jax.random.split(jax.random.key(1), 3)
+    params = {
+        "w": jax.random.normal(k[0], (5, 5), jnp.float64) / 2,
+        "b": jax.random.normal(k[1], (5,), jnp.float64),
+        "v": jax.random.normal(k[2], (5, 2), jnp.float64),
+    }
+    return ntkcalc.Net(shared_weight_apply, params)
+
+
+ZOO = [
+    Case("mlp", lambda: _linen(MLP(), np.zeros((1, 5))), lambda r, n: r.normal(size=(n, 5))),
+    Case("cnn", lambda: _linen(CNN(), np.zeros((1, 16, 16, 2))),
+         lambda r, n: r.normal(size=(n, 16, 16, 2))),
+    Case("resblock-linen", lambda: _linen(ResBlockLinen(), np.zeros((1, 5)), train=False),
+         lambda r, n: r.normal(size=(n, 5))),
+    Case("resblock-nnx", _nnx_res, lambda r, n: r.normal(size=(n, 5))),
+    Case("attention", lambda: _linen(AttentionBlock(), np.zeros((1, 4, 6))),
+         lambda r, n: r.normal(size=(n, 4, 6))),
+    Case("tokens", lambda: _linen(TokenModel(), np.zeros((1, 4), np.int32)),
+         lambda r, n: r.integers(0, 11, size=(n, 4)).astype(np.int32)),
+    Case("shared-weight", _shared, lambda r, n: r.normal(size=(n, 5))),
+]
