@@ -5,6 +5,9 @@ from .alignment import alignment as alignment
 from .alignment import cka as cka
 from .alignment import kernel_distance as kernel_distance
 from .alignment import task_spectrum as task_spectrum
+from .expressivity import FeatureRank as FeatureRank
+from .expressivity import feature_rank as feature_rank
+from .expressivity import feature_rank_of as feature_rank_of
 from .forecast import Forecast as Forecast
 from .forecast import forecast as forecast
 from .hutchpp import Estimate as Estimate

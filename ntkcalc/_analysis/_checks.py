@@ -121,6 +121,16 @@ def same_outputs(name: str, a: np.ndarray, *, want: int, ref: str) -> None:
         raise ValueError(OUTPUT_MISMATCH.format(name=name, got=a.shape[1], ref=ref, want=want))
 
 
+def examples(name: str, x) -> np.ndarray:
+    """Inputs as an ndarray with at least one example on axis 0."""
+    x = np.asarray(x)
+    if x.ndim < 1 or x.shape[0] == 0:
+        raise ValueError(
+            f"`{name}` must have at least one example on axis 0, got shape {x.shape}."
+        )
+    return x
+
+
 def nonnegative(name: str, value) -> np.ndarray:
     """A finite scalar or 1-D array of values >= 0 (a ridge, a noise variance)."""
     arr = finite_array(name, value, ndim=(0, 1))

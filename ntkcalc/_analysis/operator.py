@@ -168,7 +168,5 @@ def ntk_operator(net, x, *, outputs: Outputs = "trace", batch: int = 256) -> NTK
             f"{type(net).__name__}. Wrap a function with Net(apply, params)."
         )
     batch = _checks.positive_int("batch", batch)
-    x = np.asarray(x)
-    if x.ndim < 1 or x.shape[0] == 0:
-        raise ValueError(f"`x` must have at least one example on axis 0, got shape {x.shape}.")
+    x = _checks.examples("x", x)
     return NTKOperator(net, x, outputs=outputs, batch=batch)
