@@ -135,6 +135,18 @@ class Net:
         call = functools.partial(_call_nnx, graphdef)
         return cls._make(call, params, state, type(model).__name__)
 
+    @classmethod
+    def from_checkpoint(cls, path, *, module, **options) -> Net:
+        """Load parameters saved with orbax-checkpoint or flax msgpack; see `load_checkpoint`.
+
+        ``module`` is a linen module (with ``example=`` input or ``variables=`` template to check
+        the structure) or an nnx model (abstract or constructed); ``options`` are
+        `load_checkpoint`'s (``step``, ``item``, ``subtree``, ``trainable``, apply keywords).
+        """
+        from .checkpoint import load_checkpoint
+
+        return load_checkpoint(path, module=module, **options)
+
     # -- use ---------------------------------------------------------------------------------
     def apply(self, params: PyTree, x) -> jax.Array:
         """``apply(params, x) -> outputs`` with this Net's frozen state."""
