@@ -165,15 +165,17 @@ def test_cross_entropy_flow_is_the_small_step_limit(problem):
     # Euler's method converges at first order (common practice): discrete steps at lr and lr/2
     # to the same time t approach the ODE solution with errors in ratio ≈ 1/2.
     p = problem
-    flow = forecast(p["k"], p["labels"], p["f0"], lr=1.0, steps=np.array([0.0, 4.0]),
-                    loss="cross-entropy", flow=True)
-    errs = []
+    test = dict(k_test_train=p["k_test"], f0_test=p["f0_test"], loss="cross-entropy")
+    flow = forecast(p["k"], p["labels"], p["f0"], lr=1.0, steps=np.array([0.0, 4.0]), flow=True,
+                    **test)
+    errs, test_errs = [], []
     for lr, s in ((0.02, 200), (0.01, 400)):
-        fc = forecast(p["k"], p["labels"], p["f0"], lr=lr, steps=np.array([0, s]),
-                      loss="cross-entropy")
+        fc = forecast(p["k"], p["labels"], p["f0"], lr=lr, steps=np.array([0, s]), **test)
         errs.append(np.max(np.abs(fc.train_outputs[-1] - flow.train_outputs[-1])))
-    assert errs[0] < 1e-2
+        test_errs.append(np.max(np.abs(fc.test_outputs[-1] - flow.test_outputs[-1])))
+    assert errs[0] < 1e-2 and test_errs[0] < 1e-2
     assert errs[1] / errs[0] == pytest.approx(0.5, abs=0.05)
+    assert test_errs[1] / test_errs[0] == pytest.approx(0.5, abs=0.05)
 
 
 def _net_vs_forecast(width, *, lr_fraction, steps=300):

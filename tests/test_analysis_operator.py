@@ -5,6 +5,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
+import scipy.linalg
 import scipy.sparse.linalg as spla
 
 from ntkcalc._adapters.net import Net
@@ -33,16 +34,16 @@ def setup():
         net.params, x)
     leaves = jax.tree_util.tree_leaves(jac)
     j = np.asarray(jnp.concatenate([leaf.reshape(2000, 3, -1) for leaf in leaves], axis=-1))
-    return net, x, j  # j: (N, O, P), the dense reference Jacobian
+    jcat = j.reshape(2000, -1)  # [J_1 ... J_O], so that Σ_a J_a J_aᵀ = jcat jcatᵀ
+    return net, x, j, jcat @ jcat.T  # j: (N, O, P) dense reference Jacobian; its trace kernel
 
 
 def test_trace_mode_matches_dense_kernel(setup):
     # Reference: Σ_a J_a J_aᵀ from the dense jacrev Jacobian, N = 2000 (8 batches of 256, the last
     # padded); agreement to 1e-10 relative in float64.
-    net, x, j = setup
+    net, x, _, k = setup
     op = ntk_operator(net, x, outputs="trace", batch=256)
     assert isinstance(op, NTKOperator) and op.shape == (2000, 2000) and op.dtype == np.float64
-    k = np.einsum("iap,jap->ij", j, j)
     v = np.random.default_rng(1).standard_normal((2000, 4))
     np.testing.assert_allclose(op.matmat(v), k @ v, rtol=1e-10, atol=1e-10 * np.abs(k @ v).max())
     np.testing.assert_allclose(op.matvec(v[:, 0]), k @ v[:, 0], rtol=1e-10,
@@ -53,7 +54,7 @@ def test_trace_mode_matches_dense_kernel(setup):
 def test_full_and_output_sum_modes(setup):
     # Reference: J Jᵀ over (example, output) pairs (row i·O + a) and (Σ_a J_a)(Σ_a J_a)ᵀ, on the
     # first 300 examples, batches of 128 (last padded).
-    net, x, j = setup
+    net, x, j, _ = setup
     j3 = j[:300]
     full = np.einsum("iap,jbp->iajb", j3, j3).reshape(900, 900)
     summed = np.einsum("ip,jp->ij", j3.sum(1), j3.sum(1))
@@ -69,15 +70,16 @@ def test_operator_feeds_lanczos_hutchpp_and_cg(setup):
     # The operator through scipy's Lanczos (eigsh), Hutch++ and CG, against the same quantities
     # of the dense kernel: top-3 eigenvalues to 1e-8, trace within 5% (60 queries), ridge
     # solution (ridge 300) to 1e-6.
-    net, x, j = setup
-    k = np.einsum("iap,jap->ij", j, j)
+    net, x, j, k = setup
     op = ntk_operator(net, x, outputs="trace")
     top = spectrum(op, top=3)
-    np.testing.assert_allclose(top.eigenvalues, np.linalg.eigvalsh(k)[::-1][:3], rtol=1e-8)
+    jcat = j.reshape(2000, -1)  # [J_1 ... J_O]: K = jcat jcatᵀ shares its nonzero eigenvalues
+    dense_top = np.linalg.eigvalsh(jcat.T @ jcat)[::-1][:3]  # with the smaller jcatᵀ jcat
+    np.testing.assert_allclose(top.eigenvalues, dense_top, rtol=1e-8)
     assert estimate_trace(op, num_queries=60, seed=0).value == pytest.approx(np.trace(k), rel=0.05)
     y = np.sin(x[:, :1])
     fit = ridge_fit(op, y, ridge=300.0)
-    dense = np.linalg.solve(k + 300.0 * np.eye(2000), y)
+    dense = scipy.linalg.cho_solve(scipy.linalg.cho_factor(k + 300.0 * np.eye(2000)), y)
     np.testing.assert_allclose(fit.dual_coef, dense, rtol=1e-6, atol=1e-8)
 
 

@@ -13,6 +13,12 @@ averaged over examples and outputs. One eigendecomposition ``K = V Λ Vᵀ`` ser
   ``KARE = (1/N) yᵀ (K/N + λI)⁻² y / ((1/N) tr (K/N + λI)⁻¹)²``. Its λ is ``r / N`` on our axis;
   with that conversion KARE and GCV are algebraically the same number (``I − H = r (K + rI)⁻¹``),
   computed here by the two formulas independently.
+
+Caveat (measured in this package's tests on scikit-learn's digits, 600 training images): with a
+linear kernel GCV at its chosen ridge lies within ~2% of the held-out error, but with an RBF kernel
+near interpolation (tiny ridge) GCV and KARE underestimate it by 15-45%, while LOO stays within
+~12%. GCV replaces each ``H_ii`` by their mean, which fails when leverages are uneven; prefer LOO
+there.
 """
 
 from __future__ import annotations
