@@ -1,0 +1,137 @@
+"""The figures of the report, drawn with matplotlib's Agg canvas (no display, no pyplot state).
+
+Each function takes plain arrays and returns a `matplotlib.figure.Figure`; `png` turns one into
+PNG bytes. Colors: one blue for what was observed or computed, one orange for forecasts and
+estimates, grey for reference lines.
+"""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+
+OBSERVED = "#1f5fa8"
+ESTIMATE = "#d9731a"
+THIRD = "#3a8f4b"
+REFERENCE = "#777777"
+
+
+def _figure(width: float = 6.4, height: float = 3.6, *, cols: int = 1) -> tuple[Figure, list]:
+    fig = Figure(figsize=(width, height), layout="constrained")
+    FigureCanvasAgg(fig)
+    axes = [fig.add_subplot(1, cols, i + 1) for i in range(cols)]
+    for ax in axes:
+        ax.grid(True, which="major", color="#dddddd", linewidth=0.6)
+        ax.set_axisbelow(True)
+    return fig, axes
+
+
+def _label(ax, x: str, y: str, title: str, *, legend: bool = False) -> None:
+    ax.set_xlabel(x)
+    ax.set_ylabel(y)
+    ax.set_title(title)
+    if legend:
+        ax.legend(frameon=False, fontsize=8)
+
+
+def png(fig: Figure, *, dpi: int = 110) -> bytes:
+    """The figure as PNG bytes."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi)
+    return buf.getvalue()
+
+
+def spectrum_figure(eigenvalues, *, exponent: float, fit_range: tuple[int, int],
+                    intercept: float) -> Figure:
+    """Eigenvalue against rank on log-log axes, with the fit ``λ_i ≈ e^c · i^(−α)``.
+
+    Args:
+        eigenvalues: (n,) descending; non-positive ones are left out of the log plot.
+        exponent: α; fit_range: (first, last) 1-based ranks of the fit; intercept: c.
+    """
+    w = np.asarray(eigenvalues, dtype=np.float64)
+    ranks = np.arange(1, w.size + 1)
+    keep = w > 0
+    fig, (ax,) = _figure()
+    ax.loglog(ranks[keep], w[keep], ".", color=OBSERVED, markersize=3, label="eigenvalues")
+    if np.isfinite(exponent):
+        first, last = fit_range
+        r = np.arange(first, last + 1)
+        ax.loglog(r, np.exp(intercept) * r ** (-exponent), "-", color=ESTIMATE, linewidth=1.5,
+                  label=f"power law i^(−{exponent:.2f}), ranks {first}–{last}")
+    _label(ax, "rank i", "eigenvalue λ_i", "Kernel spectrum", legend=True)
+    return fig
+
+
+def heatmap_figure(kernels: dict[str, np.ndarray], labels, class_names) -> Figure:
+    """Each kernel as a heat map, examples sorted by class, class boundaries drawn.
+
+    Args:
+        kernels: title -> (n, n) kernel over the same examples.
+        labels: (n,) integer classes; class_names: (C,) names.
+    """
+    labels = np.asarray(labels)
+    order = np.argsort(labels, kind="stable")
+    counts = np.bincount(labels, minlength=len(class_names))
+    edges = np.cumsum(counts)[:-1] - 0.5
+    centers = np.cumsum(counts) - counts / 2 - 0.5
+    fig, axes = _figure(4.0 * len(kernels) + 0.8, 4.2, cols=len(kernels))
+    for ax, (title, k) in zip(axes, kernels.items(), strict=True):
+        k = np.asarray(k)[np.ix_(order, order)]
+        ax.grid(False)
+        im = ax.imshow(k, cmap="viridis", interpolation="nearest")
+        for e in edges:
+            ax.axhline(e, color="white", linewidth=0.8)
+            ax.axvline(e, color="white", linewidth=0.8)
+        ax.set_xticks(centers, class_names, rotation=30, ha="right", fontsize=8)
+        ax.set_yticks(centers, class_names, fontsize=8)
+        ax.set_title(title, fontsize=10)
+        fig.colorbar(im, ax=ax, shrink=0.8, label="Θ(x_i, x_j)")
+    return fig
+
+
+def drift_figure(steps, distance, alignment) -> Figure:
+    """Kernel distance to initialization and kernel-label alignment against training step."""
+    steps = np.asarray(steps)
+    fig, (left, right) = _figure(8.0, 3.4, cols=2)
+    left.plot(steps, distance, "o-", color=OBSERVED)
+    left.set_xscale("symlog", linthresh=1)
+    _label(left, "training step", "1 − cos(Θ_0, Θ_t)", "Kernel distance to initialization")
+    right.plot(steps, alignment, "o-", color=THIRD)
+    right.set_xscale("symlog", linthresh=1)
+    _label(right, "training step", "centered alignment A(Θ_t, YYᵀ)", "Kernel-label alignment")
+    return fig
+
+
+def forecast_figure(steps, *, observed_train, forecast_train, observed_test=None,
+                    forecast_test=None) -> Figure:
+    """Observed loss (solid) and the lazy-training forecast (dashed), train and test."""
+    steps = np.asarray(steps)
+    fig, (ax,) = _figure()
+    ax.plot(steps, observed_train, "-", color=OBSERVED, label="train, observed")
+    ax.plot(steps, forecast_train, "--", color=OBSERVED, label="train, forecast")
+    if observed_test is not None:
+        ax.plot(steps, observed_test, "-", color=ESTIMATE, label="test, observed")
+        ax.plot(steps, forecast_test, "--", color=ESTIMATE, label="test, forecast")
+    ax.set_xscale("symlog", linthresh=1)
+    ax.set_yscale("log")
+    _label(ax, "training step", "loss (1/N) Σ ½‖f − y‖²",
+           "Lazy-training forecast from the initial kernel vs the actual run", legend=True)
+    return fig
+
+
+def risk_figure(ridges, *, gcv, kare, loo, heldout, chosen: float) -> Figure:
+    """GCV, KARE and leave-one-out estimates and the held-out error against the ridge."""
+    fig, (ax,) = _figure()
+    ax.loglog(ridges, gcv, "-", color=ESTIMATE, label="GCV")
+    ax.loglog(ridges, kare, ":", color="#8a3ea8", linewidth=2.0, label="KARE")
+    ax.loglog(ridges, loo, "-.", color=THIRD, label="leave-one-out")
+    ax.loglog(ridges, heldout, "-", color=OBSERVED, linewidth=2.0, label="held-out test")
+    ax.axvline(chosen, color=REFERENCE, linewidth=1.0, linestyle="--",
+               label=f"chosen ridge {chosen:.3g}")
+    _label(ax, "ridge r in (K + r·I) α = y", "mean squared error per output",
+           "Kernel ridge: estimated and held-out test error", legend=True)
+    return fig
