@@ -173,6 +173,30 @@ def _trace(req: Request, program: Program):
     )
 
 
+_TRACED: dict = {}
+
+
+def _traced(req: Request, base: Program):
+    """(forward FLOPs, activations, structured analysis) of the per-example function, traced
+    once per (Net.call, parameter selection, shapes and dtypes): repeated calls reuse it, and so
+    reuse the compiled steps keyed on the resulting `Program`."""
+    key = (
+        req.net.call, base.treedef, req.selection,
+        tuple((np.shape(d), str(d.dtype)) for d in req.diff),
+        tuple((np.shape(o), str(o.dtype)) for o in req.other),
+        jax.tree_util.tree_structure(req.state),
+        tuple((np.shape(s), str(s.dtype)) for s in jax.tree_util.tree_leaves(req.state)),
+        req.x1.shape[1:], str(req.x1.dtype),
+    )
+    if key not in _TRACED:
+        if len(_TRACED) > 64:
+            _TRACED.pop(next(iter(_TRACED)))
+        closed = _trace(req, base)
+        fwd, acts = C.forward_cost(closed)
+        _TRACED[key] = (fwd, acts, st.analyze(closed, len(req.diff)))
+    return _TRACED[key]
+
+
 def _blocks(n1: int, n2: int, peak, budget: int) -> int | None:
     """Largest tile side (examples) whose estimated peak fits ``budget``; padding kept small."""
     n = max(n1, n2)
@@ -223,9 +247,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
     sizes = [int(np.prod(s, dtype=np.int64)) for s in shapes]
     base = Program(req.net.call, jax.tree_util.tree_structure(req.params), sel, outputs, o,
                    "jacobian", ("dense",) * len(req.diff))
-    closed = _trace(req, base)
-    fwd, acts = C.forward_cost(closed)
-    analysis = st.analyze(closed, len(req.diff))
+    fwd, acts, analysis = _traced(req, base)
     pairs = n1 * (n1 + 1) / 2 if sym else n1 * n2
     tile_elems = math.prod(tile_shape(outputs, 1, 1, o))
     rate = C.machine_rate(req.dtype.name)

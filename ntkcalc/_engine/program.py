@@ -28,9 +28,9 @@ from .options import basis_size, tile_shape
 from .select import Selection
 
 
-@dataclasses.dataclass(frozen=True, eq=False)
+@dataclasses.dataclass(frozen=True)
 class Program:
-    """Static description of one kernel computation (hashable by identity).
+    """Static description of one kernel computation (hashable: the compile-cache key).
 
     Fields:
         call: the Net's ``call(params, state, x)``.

@@ -44,7 +44,7 @@ RULES = {"dot_general": "dense", "conv_general_dilated": "conv", "mul": "scale",
 CALLS = frozenset({"jit", "pjit", "closed_call"})
 
 
-@dataclasses.dataclass(frozen=True)
+@dataclasses.dataclass(frozen=True, eq=False)
 class Use:
     """One consumption of a differentiated leaf by a primitive with a rule."""
 
@@ -63,7 +63,7 @@ class Use:
         return all(p.name in PERMUTING for p, _ in self.chain)
 
 
-@dataclasses.dataclass(frozen=True)
+@dataclasses.dataclass(frozen=True, eq=False)
 class Analysis:
     """The traced per-example function; per differentiated leaf, its uses or why it fell back."""
 
