@@ -173,6 +173,9 @@ def test_cross_entropy_flow_is_the_small_step_limit(problem):
         fc = forecast(p["k"], p["labels"], p["f0"], lr=lr, steps=np.array([0, s]), **test)
         errs.append(np.max(np.abs(fc.train_outputs[-1] - flow.train_outputs[-1])))
         test_errs.append(np.max(np.abs(fc.test_outputs[-1] - flow.test_outputs[-1])))
+    start = forecast(p["k"], p["labels"], p["f0"], lr=1.0, steps=np.array([0.0]), flow=True,
+                     **test)
+    np.testing.assert_array_equal(start.train_outputs[0], p["f0"])
     assert errs[0] < 1e-2 and test_errs[0] < 1e-2
     assert errs[1] / errs[0] == pytest.approx(0.5, abs=0.05)
     assert test_errs[1] / test_errs[0] == pytest.approx(0.5, abs=0.05)

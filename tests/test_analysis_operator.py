@@ -89,12 +89,19 @@ def test_plain_function_net_and_bad_input():
 
     params = {"w": jnp.ones((2, 4)) * 0.3, "v": jnp.ones((4, 1))}
     x = np.linspace(-1, 1, 10).reshape(5, 2)
-    op = ntk_operator(Net(apply, params), x, batch=2)
+    net = Net(apply, params)
+    op = ntk_operator(net, x, batch=2)
     jac = jax.jacrev(lambda p: apply(p, x))(params)
     j = np.concatenate([np.asarray(leaf).reshape(5, -1) for leaf in jax.tree_util.tree_leaves(jac)],
                        axis=1)
     np.testing.assert_allclose(op @ np.eye(5), j @ j.T, rtol=1e-12, atol=1e-12)
     assert isinstance(op, spla.LinearOperator)
+    # A checkpoint (same call, new params) reuses the compiled products and uses the new params.
+    net2 = net.replace(params={"w": params["w"], "v": 2.0 * params["v"]})
+    op2 = ntk_operator(net2, x, batch=2)
+    assert op2._pull is op._pull
+    j2 = j * np.concatenate([np.ones(4), np.full(8, 2.0)])[None, :]  # leaves (v, w): ∂/∂w doubles
+    np.testing.assert_allclose(op2 @ np.eye(5), j2 @ j2.T, rtol=1e-12, atol=1e-12)
     with pytest.raises(ValueError, match="`outputs` must be"):
         ntk_operator(Net(apply, params), x, outputs="diagonal")
     with pytest.raises(ValueError, match="`batch` must be an integer >= 1"):

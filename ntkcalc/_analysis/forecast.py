@@ -177,6 +177,8 @@ def _cross_entropy_path(kmat, kx, f0, y, steps, *, lr, n, flow, ode_rtol):
             return np.concatenate([-kernel_times(g).ravel() / n, g.ravel()])
 
         times = lr * steps.astype(np.float64)
+        if times[-1] == 0:  # nothing to integrate
+            return np.repeat(f0[None], len(times), axis=0), np.zeros((len(times), *shape))
         sol = scipy.integrate.solve_ivp(
             rhs, (0.0, float(times[-1])), np.concatenate([f0.ravel(), np.zeros(size)]),
             method="DOP853", t_eval=times, rtol=ode_rtol, atol=ode_rtol * 1e-3,

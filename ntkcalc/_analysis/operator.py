@@ -9,6 +9,7 @@ data in batches. Memory is one parameter-sized vector per probe, never N².
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from typing import Literal
@@ -47,6 +48,30 @@ def _lower(outs: jnp.ndarray, mode: str, n_out: int) -> jnp.ndarray:
     return jnp.einsum("akba->bk", per)  # Σ_a of output a's own column
 
 
+@functools.lru_cache(maxsize=64)
+def _compiled(call, mode: str, n_out: int, work):
+    """Jitted batch VJP ("pull") and JVP ("push") for one ``net.call``: Nets sharing ``call``
+    (e.g. a checkpoint via ``net.replace(params=...)``) and every operator over them share these
+    compiled functions."""
+
+    def flat(params, state, xb):
+        return call(params, state, xb).reshape(xb.shape[0], -1)
+
+    @jax.jit
+    def pull(params, state, xb, v_b):
+        _, pullback = jax.vjp(lambda p: flat(p, state, xb), params)
+        return jax.vmap(lambda c: pullback(c)[0])(_lift(v_b.astype(work), mode, n_out))
+
+    @jax.jit
+    def push(params, state, xb, tangents):
+        def one(t):
+            return jax.jvp(lambda p: flat(p, state, xb), (params,), (t,))[1]
+
+        return _lower(jax.vmap(one)(tangents), mode, n_out)
+
+    return pull, push
+
+
 class NTKOperator(spla.LinearOperator):
     """Matrix-free empirical NTK of a `Net` over fixed inputs; see `ntk_operator`.
 
@@ -65,31 +90,13 @@ class NTKOperator(spla.LinearOperator):
                 RuntimeWarning,
                 stacklevel=3,
             )
-        work = out.dtype
         self.net, self.x, self.outputs, self.batch = net, x, outputs, min(batch, x.shape[0])
         self.num_examples = int(x.shape[0])
         self.num_outputs = int(math.prod(out.shape[1:]))
         size = self.num_examples * (self.num_outputs if outputs == "full" else 1)
         super().__init__(dtype=np.dtype(np.float64), shape=(size, size))
         self.matvecs = 0
-        call, n_out, mode = net.call, self.num_outputs, outputs
-
-        def flat(params, state, xb):
-            return call(params, state, xb).reshape(xb.shape[0], -1)
-
-        @jax.jit
-        def pull(params, state, xb, v_b):
-            _, pullback = jax.vjp(lambda p: flat(p, state, xb), params)
-            return jax.vmap(lambda c: pullback(c)[0])(_lift(v_b.astype(work), mode, n_out))
-
-        @jax.jit
-        def push(params, state, xb, tangents):
-            def one(t):
-                return jax.jvp(lambda p: flat(p, state, xb), (params,), (t,))[1]
-
-            return _lower(jax.vmap(one)(tangents), mode, n_out)
-
-        self._pull, self._push = pull, push
+        self._pull, self._push = _compiled(net.call, outputs, self.num_outputs, out.dtype)
 
     def _blocks(self, v: np.ndarray) -> np.ndarray:
         """``v`` (size, k) as per-example rows: (N, O, k) for "full", else (N, k)."""
