@@ -78,13 +78,14 @@ def _text(path) -> str:
     return pathlib.Path(path).read_text(encoding="utf-8")
 
 
-def _numbers(tree):
+def numbers_in(tree):
+    """Every number in a JSON tree (booleans left out)."""
     if isinstance(tree, dict):
         for v in tree.values():
-            yield from _numbers(v)
+            yield from numbers_in(v)
     elif isinstance(tree, list):
         for v in tree:
-            yield from _numbers(v)
+            yield from numbers_in(v)
     elif isinstance(tree, int | float) and not isinstance(tree, bool):
         yield tree
 
@@ -103,7 +104,7 @@ def test_every_section_with_an_embedded_figure_or_table(tmp_path):
     doc = json.loads(_text(json_path))
     assert set(doc["sections"]) == set(SECTIONS) - {"summary", "cautions"}
     assert len(doc["summary"]) == 5
-    assert all(math.isfinite(v) for v in _numbers(doc))
+    assert all(math.isfinite(v) for v in numbers_in(doc))
     for line in doc["summary"]:
         assert html.escape(line) in page
 

@@ -108,9 +108,10 @@ def _cautions(results: dict, spec) -> list[str]:
     if not fc["lazy"]:
         out.append(
             f"Not lazy: the training loss departs from the forecast by {fc['largest_gap']:.1%} "
-            f"(tolerance {fc['tolerance']:.0%}). The initial kernel's forecasts and kernel ridge "
-            "estimates describe the linearized network, not the trained one; the kernel moved "
-            "during training (see the drift section)."
+            f"(tolerance {fc['tolerance']:.0%}). The initial kernel's "
+            "forecasts and kernel ridge estimates describe the network linearized at "
+            "initialization, not the trained one (kernel distance to initialization at the last "
+            f"checkpoint: {results['drift']['kernel_distance'][-1]:.3g})."
         )
     cond = spec.condition_number
     if cond is None or not math.isfinite(cond) or cond > COND_WARN:

@@ -1,0 +1,160 @@
+"""The demo at its small scale, end to end, and the seeded data generator behind it.
+
+The demo runs once per session (about half a minute on two cores); the tests read what it wrote.
+Its numbers about the invented data are demo outputs, not checked as facts; what is checked here
+is that the pipeline is consistent with itself where the mathematics says it must be (the
+forecast starts from the observed loss, a restored checkpoint gives back the initial kernel, the
+GCV at the chosen ridge agrees with a scikit-learn refit) and that the report is complete.
+"""
+
+import functools
+import json
+import math
+import pathlib
+import re
+
+import numpy as np
+import pytest
+from test_report import numbers_in
+
+from ntkcalc._workflows.data import CLASS_NAMES, pump_readings
+from ntkcalc._workflows.demo import DemoResult, run_demo
+from ntkcalc._workflows.report import SECTIONS
+
+
+@functools.cache
+def _demo(root: str) -> DemoResult:
+    return run_demo(pathlib.Path(root) / "demo", scale="small", progress=False)
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory) -> DemoResult:
+    return _demo(str(tmp_path_factory.mktemp("small")))
+
+
+def _json(path):
+    return json.loads(pathlib.Path(path).read_text(encoding="utf-8"))
+
+
+def test_report_has_every_section(demo):
+    page = pathlib.Path(demo.report_html).read_text(encoding="utf-8")
+    assert re.findall(r'<section id="([^"]+)">', page) == list(SECTIONS)
+    assert len(re.findall(r"<h2>", page)) == len(SECTIONS)
+    assert len(re.findall(r'src="data:image/png;base64,', page)) == 5
+    doc = _json(demo.report_json)
+    assert set(doc["sections"]) == {"spectrum", "heatmap", "drift", "forecast", "risk",
+                                    "feature-rank", "setup"}
+    for key in ("eigenvalues", "decay_exponent", "condition_number"):
+        assert key in doc["sections"]["spectrum"]
+    for key in ("gcv", "kare", "loo", "heldout", "chosen_ridge", "heldout_at_chosen"):
+        assert key in doc["sections"]["risk"]
+    for key in ("observed_train_loss", "forecast_train_loss", "observed_test_loss",
+                "forecast_test_loss", "largest_gap"):
+        assert key in doc["sections"]["forecast"]
+    for key in ("kernel_distance", "alignment", "steps"):
+        assert key in doc["sections"]["drift"]
+    ranks = doc["sections"]["feature-rank"]["checkpoints"]
+    assert all("margin" in r for r in ranks.values())
+    assert all(math.isfinite(v) for v in numbers_in(doc))
+
+
+def test_summary_is_five_lines_and_matches_the_result(demo):
+    assert len(demo.summary) == 5 and all(isinstance(s, str) and s for s in demo.summary)
+    assert all("\n" not in s for s in demo.summary)
+    doc = _json(demo.report_json)
+    assert list(demo.summary) == doc["summary"]
+    assert list(demo.cautions) == doc["cautions"]
+    risk = doc["sections"]["risk"]
+    assert demo.gcv_ridge == risk["chosen_ridge"]
+    assert demo.heldout_error == risk["heldout_at_chosen"]
+    assert f"{demo.heldout_error:.4f}" in demo.summary[3]
+    for field in ("lr", "forecast_gap", "train_loss", "test_loss", "kernel_distance",
+                  "gcv_error", "heldout_accuracy", "seconds"):
+        assert math.isfinite(getattr(demo, field)), field
+
+
+def test_checkpoints_saved_and_restored(demo):
+    """orbax steps on disk; the kernel of the restored step-0 checkpoint is the initial one."""
+    doc = _json(demo.report_json)
+    steps = doc["sections"]["drift"]["steps"]
+    saved = sorted(int(p.name) for p in (pathlib.Path(demo.out_dir) / "checkpoints").iterdir())
+    assert saved == steps and steps[0] == 0 and steps[-1] == demo.steps
+    assert doc["sections"]["drift"]["kernel_distance"][0] == pytest.approx(0.0, abs=1e-12)
+    arrays = np.load(pathlib.Path(demo.out_dir) / "arrays.npz")
+    np.testing.assert_allclose(arrays["k_init"], arrays["k_init"].T, rtol=0, atol=1e-12)
+
+
+def test_forecast_starts_where_training_starts(demo):
+    """At step 0 the linearized and the real network are the same function."""
+    fc = _json(demo.report_json)["sections"]["forecast"]
+    assert fc["steps"][0] == 0
+    assert fc["forecast_train_loss"][0] == pytest.approx(fc["observed_train_loss"][0], rel=1e-12)
+    assert fc["forecast_test_loss"][0] == pytest.approx(fc["observed_test_loss"][0], rel=1e-12)
+    assert fc["lazy"] == (fc["largest_gap"] <= fc["tolerance"])
+    assert ("Not lazy" in " ".join(demo.cautions)) == (not fc["lazy"])
+
+
+def test_gcv_at_the_chosen_ridge_matches_a_scikit_learn_refit(demo):
+    """GCV = (1/N)‖(I − H)y‖² / ((1/N) tr(I − H))² (Craven & Wahba 1979), with the residual of
+    scikit-learn's KernelRidge refitted on the saved kernel and the trace from numpy's eigvalsh."""
+    from sklearn.kernel_ridge import KernelRidge
+
+    doc = _json(demo.report_json)
+    arrays = np.load(pathlib.Path(demo.out_dir) / "arrays.npz")
+    k, labels = arrays["k_init"], arrays["labels"]
+    y = np.eye(len(CLASS_NAMES))[labels]
+    r = doc["sections"]["risk"]["chosen_ridge"]
+    fit = KernelRidge(alpha=r, kernel="precomputed").fit(k, y)
+    resid = np.mean((fit.predict(k) - y) ** 2)
+    w = np.linalg.eigvalsh(k)
+    trace = np.mean(r / (w + r))  # (1/N) tr(I − H)
+    gcv = doc["sections"]["risk"]["gcv_at_chosen"]
+    assert gcv == pytest.approx(resid / trace**2, rel=1e-8)
+
+
+def test_bad_arguments(tmp_path, demo):
+    with pytest.raises(ValueError, match="`scale`"):
+        run_demo(tmp_path / "x", scale="huge")
+    with pytest.raises(TypeError, match="`progress`"):
+        run_demo(tmp_path / "x", progress="yes")
+    with pytest.raises(TypeError, match="`out_dir`"):
+        run_demo(3)
+    (tmp_path / "file").write_text("")
+    with pytest.raises(ValueError, match="not a directory"):
+        run_demo(tmp_path / "file")
+    with pytest.raises(ValueError, match="earlier run"):
+        run_demo(demo.out_dir, scale="small")
+
+
+# -- the data generator ----------------------------------------------------------------------
+
+
+def test_readings_are_seeded_and_standardized():
+    a_train, a_test = pump_readings(200, 50, seed=3)
+    b_train, _ = pump_readings(200, 50, seed=3)
+    c_train, _ = pump_readings(200, 50, seed=4)
+    np.testing.assert_array_equal(a_train.raw, b_train.raw)
+    assert not np.allclose(a_train.raw, c_train.raw)
+    assert a_train.x.shape == (200, 11) and a_test.x.shape == (50, 11)
+    np.testing.assert_allclose(a_train.x.mean(axis=0), 0.0, atol=1e-12)
+    np.testing.assert_allclose(a_train.x.std(axis=0), 1.0, rtol=1e-12)
+    assert a_train.class_names == CLASS_NAMES
+    assert set(np.unique(a_train.labels)) == set(range(len(CLASS_NAMES)))
+    np.testing.assert_array_equal(a_train.one_hot.argmax(axis=1), a_train.labels)
+    assert np.all(a_train.severity[a_train.labels == 0] == 0)
+    assert np.all(a_train.raw[:, 3:8] > 0)  # amplitudes, logged for the model inputs
+    assert "PumpReadings(200 examples × 11 features" in repr(a_train)
+
+
+@pytest.mark.parametrize(
+    ("args", "kwargs", "error", "match"),
+    [
+        ((4, 10), {}, ValueError, "`n_train`"),
+        ((10, 0), {}, ValueError, "`n_test`"),
+        ((10.5, 3), {}, ValueError, "`n_train`"),
+        ((10, 3), {"seed": "a"}, TypeError, "`seed`"),
+    ],
+)
+def test_readings_validate(args, kwargs, error, match):
+    with pytest.raises(error, match=match):
+        pump_readings(*args, **kwargs)
