@@ -1,13 +1,28 @@
-"""The public kernel functions: validate, plan, run the tiles, return numpy arrays."""
+"""The public kernel functions: validate, plan, run the tiles, return arrays."""
 
 from __future__ import annotations
 
 import numpy as np
 
 from ._engine.options import OUTPUTS_DOC, Method, Outputs
-from ._engine.planner import plan_request, prepare
+from ._engine.planner import prepare
 from ._engine.select import ParamFilter
-from ._tiles.run import assemble
+from ._tiles.drive import compute
+
+_SCALE_DOC = """\
+        memory: peak-memory budget of this process (bytes or e.g. ``"2GB"``; default half the
+            memory available now). Tiles are planned to fit it together with the in-memory
+            result; when the result alone does not fit, the error says to pass ``store``. The
+            planner's estimate is not a hard limit: see docs/scale.md for measured peaks.
+        store: None (kernel in memory), or a directory path / URL / zarr store where the kernel
+            is written tile by tile as a zarr v3 array. Then a read-only `StoredKernel` view is
+            returned (``np.asarray(view)`` loads it) and a call repeated with the same arguments
+            computes only missing or damaged tiles; a store of a different kernel is refused.
+            Required when several JAX processes run (``jax.distributed.initialize``): each
+            computes its share of tiles into the same store.
+        progress: show a progress bar over tiles (tqdm, terminal or notebook) once a run lasts
+            over a second; log lines go to the ``logging`` logger ``"ntkcalc"`` either way.
+        devices: JAX devices of this process to spread tiles over (default all local devices)."""
 
 
 def ntk(
@@ -19,7 +34,10 @@ def ntk(
     outputs: Outputs = "trace",
     params: ParamFilter = None,
     memory=None,
-) -> np.ndarray:
+    store=None,
+    progress: bool = True,
+    devices=None,
+):
     r"""The empirical neural tangent kernel Θ(x1, x2) = J(x1) J(x2)ᵀ of ``net`` at its parameters.
 
     J(x) = ∂f(x)/∂θ is the Jacobian of the outputs with respect to the (selected) parameters, so
@@ -39,15 +57,16 @@ def ntk(
 {outputs_doc}
         params: restrict Θ to some parameters: a regular expression searched in dotted names
             (``"Dense_0"``, ``"kernel$"``) or a predicate on the name.
-        memory: peak-memory budget (bytes or e.g. ``"2GB"``; default half the available memory).
+{scale_doc}
 
     Returns:
-        numpy array of the shape above: float32, or float64 when JAX x64 is enabled. All matmuls
-        run at precision "highest".
+        numpy array of the shape above (or a `StoredKernel` view of it with ``store``): float32,
+        or float64 when JAX x64 is enabled. All matmuls run at precision "highest".
     """
     req = prepare(net, x1, x2, outputs=outputs, method=method, params=params)
-    plan = plan_request(req, outputs=outputs, memory=memory, method=method)
-    return assemble(plan, req)[0]
+    kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
+                         progress=progress, devices=devices)
+    return kernels[0]
 
 
 def ntk_by_layer(
@@ -59,17 +78,21 @@ def ntk_by_layer(
     outputs: Outputs = "trace",
     params: ParamFilter = None,
     memory=None,
+    store=None,
+    progress: bool = True,
+    devices=None,
 ) -> dict[str, np.ndarray]:
     """The kernel split by top-level parameter group: ``{group name: kernel}``.
 
     Groups are the first key of each parameter's path (``"Dense_0"``, ``"encoder"``, ...). Their
-    sum is ``ntk(net, x1, x2, ...)`` with the same options; computed in one pass.
+    sum is ``ntk(net, x1, x2, ...)`` with the same options; computed in one pass. With ``store``
+    the groups share one zarr array (groups, N1, N2, ...) and each value is a `StoredKernel` view.
     """
     req = prepare(net, x1, x2, outputs=outputs, method=method, params=params, by_layer=True)
-    plan = plan_request(req, outputs=outputs, memory=memory, method=method)
-    kernels = assemble(plan, req)
-    return {name: kernels[g] for g, name in enumerate(plan.group_names)}
+    kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
+                         progress=progress, devices=devices)
+    return dict(zip(req.selection.group_names, kernels, strict=True))
 
 
 _indented = "\n".join(" " * 12 + line for line in OUTPUTS_DOC.splitlines())
-ntk.__doc__ = ntk.__doc__.format(outputs_doc=_indented)
+ntk.__doc__ = ntk.__doc__.format(outputs_doc=_indented, scale_doc=_SCALE_DOC)

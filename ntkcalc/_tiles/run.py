@@ -1,13 +1,17 @@
-"""Run a plan's tiles and assemble the kernel in memory.
+"""Run a plan's tiles on one or more devices and assemble the kernel in memory.
 
 Factors of a row block are computed once per row; column factors are cached for every block
-when the plan says they fit, else recomputed per tile. All compiled steps run at matmul precision
-"highest", whatever the backend default.
+when the plan says they fit, else recomputed per tile. With several devices, tile k runs on device
+``k mod D`` (parameters are placed on every device once; a cached block's factors are copied to
+the device that needs them). Tiles are dispatched asynchronously and their values are fetched
+``D`` tiles later, so every device has work queued while the host copies or writes results. All
+compiled steps run at matmul precision "highest", whatever the backend default.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
+from collections import deque
+from collections.abc import Callable, Iterator, Sequence
 
 import jax
 import numpy as np
@@ -16,24 +20,49 @@ from .._engine.program import compiled
 from .blocking import Tile, mirror, padded, tiles
 
 
-def iter_tiles(plan, req, todo: list[Tile] | None = None) -> Iterator[tuple[Tile, np.ndarray]]:
-    """Yield ``(tile, values)`` for each tile, values of shape (groups, rows, cols, ...)."""
+class _Placed:
+    """Arrays computed on one device, copied to others on first use."""
+
+    def __init__(self, value, device):
+        self._on = {device: value}
+
+    def on(self, device):
+        if device not in self._on:
+            self._on[device] = jax.device_put(next(iter(self._on.values())), device)
+        return self._on[device]
+
+
+def iter_tiles(plan, req, todo: list[Tile] | None = None, *,
+               devices: Sequence[jax.Device] | None = None) -> Iterator[tuple[Tile, np.ndarray]]:
+    """Yield ``(tile, values)`` for each tile, values of shape (groups, rows, cols, ...).
+
+    ``devices=None`` runs on the default device; a sequence spreads tiles round-robin over it.
+    Tiles are yielded in ``todo`` order.
+    """
     factors_fn, tile_fn = compiled(plan.program)
     x1 = req.x1
     x2 = x1 if req.x2 is None else req.x2
     b = plan.block
     todo = tiles(plan.n1, plan.n2, b, symmetric=plan.symmetric) if todo is None else todo
-    cache: dict[int, object] = {}
-    args = (req.diff, req.other, req.state)
+    devs = [None] if devices is None else list(devices)
+    put = (lambda v, d: v) if devices is None else jax.device_put
+    args = {d: put((req.diff, req.other, req.state), d) for d in devs}
+    cache: dict[int, _Placed] = {}
+    pending: deque = deque()
+
+    def factors(x, lo, hi, d):
+        return _Placed(factors_fn(*args[d], put(padded(x, lo, hi, b), d)), d)
+
     with jax.default_matmul_precision("highest"):
         row_i, row_f = None, None
-        for t in todo:
+        for k, t in enumerate(todo):
+            d = devs[k % len(devs)]
             if t.i != row_i:
                 row_i = t.i
                 if plan.symmetric and t.i in cache:
                     row_f = cache[t.i]
                 else:
-                    row_f = factors_fn(*args, padded(x1, t.r0, t.r1, b))
+                    row_f = factors(x1, t.r0, t.r1, d)
                 if plan.symmetric and plan.cache_factors:
                     cache[t.i] = row_f
             if plan.symmetric and t.i == t.j:
@@ -41,17 +70,26 @@ def iter_tiles(plan, req, todo: list[Tile] | None = None) -> Iterator[tuple[Tile
             elif plan.cache_factors and t.j in cache:
                 col_f = cache[t.j]
             else:
-                col_f = factors_fn(*args, padded(x2, t.c0, t.c1, b))
+                col_f = factors(x2, t.c0, t.c1, d)
                 if plan.cache_factors:
                     cache[t.j] = col_f
-            values = np.asarray(tile_fn(*args, row_f, col_f))
-            yield t, values[:, : t.r1 - t.r0, : t.c1 - t.c0]
+            pending.append((t, tile_fn(*args[d], row_f.on(d), col_f.on(d))))
+            if len(pending) >= len(devs):
+                yield _fetch(*pending.popleft())
+        while pending:
+            yield _fetch(*pending.popleft())
 
 
-def assemble(plan, req, *, on_tile: Callable[[Tile], None] | None = None) -> np.ndarray:
+def _fetch(t: Tile, values) -> tuple[Tile, np.ndarray]:
+    return t, np.asarray(values)[:, : t.r1 - t.r0, : t.c1 - t.c0]
+
+
+def assemble(plan, req, *, on_tile: Callable[[Tile], None] | None = None,
+             devices: Sequence[jax.Device] | None = None,
+             todo: list[Tile] | None = None) -> np.ndarray:
     """The whole kernel, (groups, N1, N2, ...), in host memory."""
     out = np.empty((len(plan.group_names),) + plan.shape, dtype=plan.dtype)
-    for t, values in iter_tiles(plan, req):
+    for t, values in iter_tiles(plan, req, todo, devices=devices):
         out[:, t.r0 : t.r1, t.c0 : t.c1] = values
         if plan.symmetric and t.i != t.j:
             out[:, t.c0 : t.c1, t.r0 : t.r1] = mirror(values, plan.outputs)

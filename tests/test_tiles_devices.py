@@ -1,0 +1,100 @@
+"""Tiles spread over devices and over JAX processes give the single-device kernel.
+
+References: the in-memory single-device, single-process kernel of `ntkcalc.ntk` (float64, within
+1e-12 relative; bit-identical where the tiles are the same) and `helpers.reference_full`.
+Forced CPU devices and processes run in subprocesses, bounded by timeouts.
+"""
+
+from __future__ import annotations
+
+import json
+import socket
+
+import jax
+import numpy as np
+import pytest
+from helpers import assert_close, reference_full
+from test_tiles_store import SMALL, mlp, run_child
+
+import ntkcalc
+
+N = 21
+
+
+@pytest.fixture(scope="module")
+def single():
+    net, x = mlp(N)
+    return ntkcalc.ntk(net, x, outputs="full", memory=SMALL, progress=False), reference_full(net, x)
+
+
+def _load(path):
+    with open(str(path) + ".json") as f:
+        return np.load(path), json.load(f)
+
+
+@pytest.mark.multiprocess
+def test_four_forced_devices(single, tmp_path):
+    # 1 vs 4 devices, in memory and into a store: same tiles, so bit-identical in float64.
+    mem, ref = single
+    runs = {"mem4": {}, "store4": {"store": str(tmp_path / "s.zarr")}, "mem1of4": {"use": 1}}
+    for name, run in runs.items():
+        run["out"] = str(tmp_path / f"{name}.npy")
+    proc = run_child({"n": N, "outputs": "full", "memory": SMALL, "devices": 4,
+                      "runs": list(runs.values())})
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    for name, run in runs.items():
+        got, info = _load(run["out"])
+        assert_close(got, ref, rtol=1e-12)
+        if name == "store4":
+            assert info["devices"] == 4 and info["computed"] == info["tiles"]
+        if name == "mem1of4":
+            np.testing.assert_array_equal(got, mem)  # one device: the same tiles, bitwise
+        # CPU devices share the budget: tiles on 4 devices are planned in a quarter of it, so
+        # they may be smaller than the single-device run's: equal to rounding, not bitwise.
+        assert_close(got, mem, rtol=1e-12)
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.mark.multiprocess
+def test_two_processes_share_one_store(single, tmp_path):
+    # 1 vs 2 processes (jax.distributed on 127.0.0.1, gloo CPU collectives), one shared store;
+    # the store is first partly filled by a killed single-process run, which the two resume.
+    mem, ref = single
+    store = str(tmp_path / "k.zarr")
+    base = {"n": N, "outputs": "full", "memory": SMALL, "store": store}
+    killed = run_child({**base, "kill_after": 2})
+    assert killed.returncode == -9, killed.stdout + killed.stderr
+    port = _free_port()
+    procs = [run_child({**base, "process": [i, 2, port], "out": str(tmp_path / f"p{i}.npy")},
+                       wait=False) for i in range(2)]
+    try:
+        logs = [p.communicate(timeout=240)[0].decode() for p in procs]
+    finally:
+        for p in procs:
+            p.kill()
+    for p, log in zip(procs, logs, strict=True):
+        assert p.returncode == 0, log
+    results = [_load(tmp_path / f"p{i}.npy") for i in range(2)]
+    for got, _ in results:
+        np.testing.assert_array_equal(got, mem)  # same tile size as the single-process run
+    infos = [info for _, info in results]
+    assert [i["process"] for i in infos] == [[0, 2], [1, 2]]
+    assert sum(i["computed"] for i in infos) == infos[0]["tiles"] - 2
+    assert sum(i["computed"] + i["reused"] for i in infos) == infos[0]["tiles"]
+    assert_close(results[0][0], ref, rtol=1e-12)
+
+
+def test_two_local_devices_argument_checks():
+    net, x = mlp(4)
+    with pytest.raises(ValueError, match="`devices`=\\[\\] is not a non-empty sequence"):
+        ntkcalc.ntk(net, x, devices=[])
+    with pytest.raises(ValueError, match="`devices`='cpu' is not a non-empty sequence"):
+        ntkcalc.ntk(net, x, devices="cpu")
+    dev = jax.local_devices()[0]
+    with pytest.raises(ValueError, match="lists a device twice"):
+        ntkcalc.ntk(net, x, devices=[dev, dev])

@@ -1,0 +1,259 @@
+"""The resumable zarr store behind `ntkcalc.ntk(..., store=...)`.
+
+References: the in-memory, single-device kernel of `ntkcalc.ntk` (itself checked against dense
+jax.jacrev in test_kernel) and `helpers.reference_full` (whole-batch jax.jacrev + einsum).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import textwrap
+
+import numpy as np
+import pytest
+from helpers import ZOO, assert_close, reduce_mode, reference_full
+
+import ntkcalc
+from ntkcalc._tiles import drive
+from ntkcalc._tiles.store import TileStore
+
+TESTS = os.path.dirname(os.path.abspath(__file__))
+N = 21
+SMALL = "120KB"  # tiles of 7 examples for the "full" MLP kernel below: 6 upper tiles of 3×3 blocks
+
+# A child process computing a kernel from a JSON spec; it can SIGKILL itself while writing tiles
+# and can join a multi-process JAX run. Shared by test_tiles_devices.
+CHILD = textwrap.dedent("""
+    import json, os, signal, sys
+    spec = json.loads(sys.argv[1])
+    if spec.get("devices"):
+        os.environ["XLA_FLAGS"] = f"--xla_force_host_platform_device_count={spec['devices']}"
+    sys.path.insert(0, spec["tests"])
+    import conftest  # x64, rank promotion "raise", matmul precision "highest" as in the suite
+    import jax
+    if spec.get("process"):
+        index, count, port = spec["process"]
+        jax.distributed.initialize(f"127.0.0.1:{port}", num_processes=count, process_id=index)
+    import numpy as np
+    import ntkcalc
+    from ntkcalc._tiles.store import TileStore
+    from helpers import ZOO
+
+    case = next(c for c in ZOO if c.name == "mlp")
+    net, x = case.make(), case.x(np.random.default_rng(spec["seed"]), spec["n"])
+    written = [0]
+    if spec.get("kill_after") is not None:
+        write = TileStore.write
+        def killing_write(self, t, values):
+            if written[0] == spec["kill_after"]:
+                if spec.get("half"):  # the chunk lands, its checksum never does
+                    self.kernel[:, t.r0:t.r1, t.c0:t.c1] = np.zeros_like(values)
+                os.kill(os.getpid(), signal.SIGKILL)
+            write(self, t, values)
+            written[0] += 1
+        TileStore.write = killing_write
+    for run in spec.get("runs", [spec]):  # several kernels in one process share compilations
+        devices = jax.local_devices()[: run["use"]] if run.get("use") else None
+        k = ntkcalc.ntk(net, x, outputs=spec["outputs"], memory=spec.get("memory"),
+                        store=run.get("store"), progress=False, devices=devices)
+        if run.get("out"):
+            np.save(run["out"], np.asarray(k))
+            info = getattr(k, "info", None)
+            with open(run["out"] + ".json", "w") as f:
+                json.dump(None if info is None else info.__dict__, f)
+""")
+
+
+def run_child(spec: dict, *, timeout: float = 240, wait: bool = True):
+    """Start the child on ``spec``; wait (bounded) and return the CompletedProcess, or Popen."""
+    args = [sys.executable, "-c", CHILD, json.dumps({"tests": TESTS, "seed": 0, **spec})]
+    env = {k: v for k, v in os.environ.items() if k != "XLA_FLAGS"}
+    if not wait:
+        return subprocess.Popen(args, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT)
+    return subprocess.run(args, env=env, capture_output=True, text=True, timeout=timeout)
+
+
+def mlp(n: int = N, seed: int = 0):
+    case = next(c for c in ZOO if c.name == "mlp")
+    return case.make(), case.x(np.random.default_rng(seed), n)
+
+
+@pytest.fixture(scope="module")
+def model():
+    net, x = mlp()
+    return net, x, reference_full(net, x)
+
+
+@pytest.mark.parametrize("memory", ["2GB", "200KB", SMALL, "50KB"])
+def test_store_equals_in_memory_and_reference(model, tmp_path, memory):
+    # References: the in-memory single-device kernel (its tiles may be smaller: the result is
+    # reserved in the budget) and dense jax.jacrev (helpers.reference_full), 1e-12 relative.
+    net, x, ref = model
+    view = ntkcalc.ntk(net, x, outputs="full", store=tmp_path / "k.zarr", memory=memory,
+                       progress=False)
+    mem = ntkcalc.ntk(net, x, outputs="full", memory=memory, progress=False)
+    assert view.shape == mem.shape and view.dtype == mem.dtype
+    assert_close(np.asarray(view), mem, rtol=1e-12)
+    assert_close(np.asarray(view), ref, rtol=1e-12)
+    np.testing.assert_array_equal(view[3:9, 2], np.asarray(view)[3:9, 2])
+    assert view.info.computed == view.info.tiles
+
+
+def test_four_tile_sizes_reached():
+    # The memory values above really give four different tile sizes (else the test is weaker).
+    net, x = mlp()
+    blocks = {ntkcalc.plan(net, x, outputs="full", memory=m).block
+              for m in ["2GB", "200KB", SMALL, "50KB"]}
+    assert len(blocks) == 4, blocks
+
+
+def test_asymmetric_and_by_layer(model, tmp_path):
+    # Reference: helpers.reference_full for K(x1, x2); the per-group kernels sum to the total.
+    net, x, _ = model
+    x2 = mlp(9, seed=1)[1]
+    ref = reduce_mode(reference_full(net, x, x2), "diagonal")
+    view = ntkcalc.ntk(net, x, x2, outputs="diagonal", store=tmp_path / "a.zarr", memory="60KB",
+                       progress=False)
+    assert_close(np.asarray(view), ref, rtol=1e-12)
+    layers = ntkcalc.ntk_by_layer(net, x, x2, outputs="diagonal", store=tmp_path / "b.zarr",
+                                  memory="60KB", progress=False)
+    assert_close(sum(np.asarray(v) for v in layers.values()), ref, rtol=1e-12)
+
+
+def _uninterrupted(net, x, path):
+    return np.asarray(ntkcalc.ntk(net, x, outputs="full", store=path, memory=SMALL,
+                                  progress=False))
+
+
+@pytest.mark.multiprocess
+@pytest.mark.parametrize("half", [False, True], ids=["between-tiles", "mid-tile"])
+def test_sigkill_then_resume_is_bit_identical(model, tmp_path, half):
+    # Reference: an uninterrupted store run with the same arguments (bit-identical), and the
+    # count of tiles the rerun computes (only those the killed run did not finish).
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    done = 2
+    proc = run_child({"n": N, "outputs": "full", "memory": SMALL, "store": str(store),
+                      "kill_after": done, "half": half})
+    assert proc.returncode == -9, proc.stdout + proc.stderr
+    view = ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, progress=False)
+    assert view.info.reused == done
+    assert view.info.computed == view.info.tiles - done == 4
+    assert view.info.repaired == 0  # a half-written tile has no checksum: it is simply missing
+    np.testing.assert_array_equal(np.asarray(view), _uninterrupted(net, x, tmp_path / "u.zarr"))
+
+
+def test_corrupted_or_lost_chunk_is_recomputed(model, tmp_path):
+    # Reference: the kernel before damage (bit-identical after repair); counts of repaired tiles.
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    want = _uninterrupted(net, x, store)
+    chunks = sorted(os.path.join(r, f) for r, _, fs in os.walk(store / "kernel" / "c")
+                    for f in fs)
+    with open(chunks[0], "r+b") as f:  # garble the first tile's bytes in place
+        f.seek(16)
+        f.write(b"\x7f" * 64)
+    with open(chunks[-1], "r+b") as f:  # truncate another
+        f.truncate(10)
+    view = ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, progress=False)
+    assert view.info.repaired == view.info.computed == 2
+    np.testing.assert_array_equal(np.asarray(view), want)
+
+
+@pytest.mark.parametrize(
+    "change",
+    ["params", "inputs", "method", "outputs", "filter"],
+)
+def test_mismatched_resume_is_refused(model, tmp_path, change):
+    # Common practice: a resumable file records what defines its contents and refuses others.
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, method="jacobian",
+                progress=False)
+    kw = dict(outputs="full", store=store, memory=SMALL, method="jacobian", progress=False)
+    if change == "params":
+        import jax
+
+        net = net.replace(params=jax.tree_util.tree_map(lambda p: p * 1.01, net.params))
+    elif change == "inputs":
+        x = x.copy()
+        x[0, 0] += 1e-9
+    elif change == "method":
+        kw["method"] = "jvp"
+    elif change == "outputs":
+        kw["outputs"] = "trace"
+    else:
+        kw["params"] = "Dense_0"
+    field = {"filter": "parameters"}.get(change, change)
+    with pytest.raises(ValueError, match=f"holds a different kernel: .*{field}"):
+        ntkcalc.ntk(net, x, **kw)
+
+
+def test_resume_with_larger_budget_keeps_stored_tiles(model, tmp_path):
+    # The store's tile size wins when it fits: a default-memory rerun reuses every tile.
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    first = _uninterrupted(net, x, store)
+    view = ntkcalc.ntk(net, x, outputs="full", store=store, progress=False)
+    assert view.info.computed == 0 and view.info.reused == view.info.tiles
+    np.testing.assert_array_equal(np.asarray(view), first)
+    with pytest.raises(MemoryError, match="was written in tiles of"):
+        ntkcalc.ntk(net, x, outputs="full", store=store, memory="50KB", progress=False)
+
+
+def test_unwritable_store_fails_before_compute(model, tmp_path, monkeypatch):
+    # Common practice: fail fast on an unusable output location, before hours of compute.
+    net, x, _ = model
+    blocker = tmp_path / "file"
+    blocker.write_text("not a directory")
+
+    def no_compute(*a, **k):
+        raise AssertionError("planned or computed before checking the store")
+
+    monkeypatch.setattr(drive, "plan_request", no_compute)
+    with pytest.raises(PermissionError, match="is not writable .* choose a directory"):
+        ntkcalc.ntk(net, x, store=blocker / "k.zarr", progress=False)
+
+
+def test_argument_errors(model):
+    net, x, _ = model
+    with pytest.raises(ValueError, match="`store`=3 is not a store location"):
+        ntkcalc.ntk(net, x, store=3)
+    with pytest.raises(ValueError, match="`progress`='yes' must be True or False"):
+        ntkcalc.ntk(net, x, progress="yes")
+
+
+def test_log_lines_say_where_and_how_much(model, tmp_path, caplog):
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    with caplog.at_level("INFO", logger="ntkcalc"):
+        ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, progress=False)
+    text = caplog.text
+    assert str(store) in text and "0 of 6 tiles done, 6 to compute" in text
+
+
+def test_chunks_are_tiles(model, tmp_path):
+    # The zarr chunk is one tile; the mirror of an upper tile is on disk too.
+    net, x, _ = model
+    view = ntkcalc.ntk(net, x, outputs="full", store=tmp_path / "k.zarr", memory=SMALL,
+                       progress=False)
+    b = view.info.block
+    assert view.array.chunks == (1, b, b, 3, 3)
+    ts = TileStore.open(tmp_path / "k.zarr", ntkcalc.plan(net, x, outputs="full", memory=SMALL))
+    assert ts.count_done() == view.info.tiles
+    full = np.asarray(view)
+    blk = np.arange(N) // b
+    off = blk[:, None] != blk[None, :]  # diagonal tiles are computed, symmetric to rounding only
+    np.testing.assert_array_equal(full[off], np.transpose(full, (1, 0, 3, 2))[off])
+
+
+def test_foreign_zarr_data_is_not_overwritten(model, tmp_path):
+    import zarr
+
+    net, x, _ = model
+    zarr.open_group(tmp_path / "other.zarr", mode="a").create_array("a", shape=(2,), dtype="i4")
+    with pytest.raises(ValueError, match="holds zarr data that ntkcalc did not write"):
+        ntkcalc.ntk(net, x, store=tmp_path / "other.zarr", progress=False)
