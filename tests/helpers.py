@@ -136,7 +136,7 @@ class TokenModel(nn.Module):
 def shared_weight_apply(params, x):
     """One weight used twice in a forward pass (and once transposed)."""
     w = params["w"]
-    h = jnp.tanh(x @ w + params["b"])
+    h = jnp.tanh(x @ w + params["b"][None])
     h = jnp.tanh(h @ w.T)
     return h @ params["v"]
 

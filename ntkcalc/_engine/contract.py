@@ -71,11 +71,12 @@ def contract(reps1, reps2, kinds, group_index, num_groups: int, outputs: str, ti
     """Sum the per-leaf contributions into ``(num_groups, *tile)``.
 
     ``reps`` is a list with one entry per differentiated leaf: an array for ``kind == "dense"``,
-    an ``(h, g)`` pair for ``kind == "factored"``, ``None`` for ``kind == "unused"``.
+    an ``(h, g)`` pair for ``kind == "factored"``, ``None`` for ``"unused"`` and ``"folded"``
+    (a bias whose derivative is carried by its layer's factors).
     """
     per_group = [None] * num_groups
     for r1, r2, kind, grp in zip(reps1, reps2, kinds, group_index, strict=True):
-        if kind == "unused":
+        if kind in ("unused", "folded"):
             continue
         if kind == "dense":
             k = contract_dense(r1, r2, outputs)

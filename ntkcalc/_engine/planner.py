@@ -289,44 +289,18 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
 
     # Structured derivatives: per leaf, factored or dense from its consumer, else fallback.
     if method in ("auto", "structured"):
-        rows, kinds = [], []
-        pair_flops = example_flops = example_bytes = pair_tmp = 0.0
-        example_flops = backprop
-        for k, (name, shape, p) in enumerate(zip(names, shapes, sizes, strict=True)):
-            rule = analysis.rule(k)
-            uses = analysis.uses[k]
-            dense_pf = C.dense_pair_flops(a, p, outputs)
-            if analysis.unused[k]:
-                rows.append(LeafCost(name, shape, "unused", "unused", 0.0, 0.0,
-                                     "does not affect the outputs"))
-                kinds.append("unused")
-                continue
-            if not uses:
-                rows.append(LeafCost(name, shape, "fallback", "jacobian", pairs * dense_pf,
-                                     a * p * isz, analysis.fallback[k] or ""))
-                kinds.append("dense")
-                pair_flops += dense_pf
-                example_bytes += a * p * isz
-                continue
-            local = sum(2.0 * a * _use_local_flops(u) for u in uses)
-            choice, pf, eb, tmp = "dense", dense_pf, a * p * isz, 0.0
-            if st.factorable(uses):
-                bsz, t, c, r = st.factored_sizes(uses[0])
-                fpf = C.factored_pair_flops(a, bsz, t, c, r, outputs)
-                feb = (bsz * t * c + a * bsz * t * r) * isz
-                # Favour the factored form only when it is cheaper per pair.
-                if fpf < dense_pf:
-                    choice, pf, eb = "factored", fpf, feb
-                    tmp = C.factored_pair_elements(a, bsz, t, outputs)
-            rows.append(LeafCost(name, shape, rule, choice, pairs * pf, eb))
-            kinds.append(choice)
-            pair_flops += pf
-            example_bytes += eb
-            pair_tmp = max(pair_tmp, tmp)
-            if choice == "dense":
-                example_flops += local
+        rows, kinds, folds = _structured_rows(analysis, sel, names, shapes, sizes, a, isz,
+                                              outputs, pairs)
+        pair_flops = sum(r.flops for r in rows) / pairs
+        example_bytes = sum(r.bytes_per_example for r in rows)
+        example_flops = backprop + sum(
+            2.0 * a * sum(_use_local_flops(u) for u in analysis.uses[k])
+            for k, kind in enumerate(kinds) if kind == "dense" and analysis.uses[k]
+        )
+        pair_tmp = max([_factored_tmp(analysis.uses[k][0], a, outputs)
+                        for k, kind in enumerate(kinds) if kind == "factored"] + [0.0])
         prog = dataclasses.replace(base, method="structured", kinds=tuple(kinds),
-                                   analysis=analysis)
+                                   analysis=analysis, folds=folds)
         finish("structured", prog, rows, pair_flops, example_flops, example_bytes, transient,
                pair_tmp)
 
@@ -355,6 +329,61 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
     estimates = {m: v[0] for m, v in candidates.items()}
     return Plan(chosen, outputs, n1, n2, sym, o, req.dtype, block, cache, tuple(rows), flops,
                 peak, seconds, estimates, budget, rate, program, sel.group_names)
+
+
+def _factored_tmp(use: st.Use, a: int, outputs: str) -> float:
+    bsz, t, _, _ = st.factored_sizes(use)
+    return C.factored_pair_elements(a, bsz, t, outputs)
+
+
+def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs):
+    """Per leaf: the plan row, the representation, and the bias folded into it (if any)."""
+    n = len(names)
+    kinds: list[str] = [""] * n
+    rows: list[LeafCost | None] = [None] * n
+    folds: list[int | None] = [None] * n
+    extra_c = [0] * n
+    for k in range(n):
+        j = analysis.bias_of[k] if analysis.bias_of else None
+        if j is not None and sel.groups[j] == sel.groups[k]:
+            folds[k] = j
+            extra_c[k] = 1
+    folded = {j for j in folds if j is not None}
+    for k, (name, shape, p) in enumerate(zip(names, shapes, sizes, strict=True)):
+        uses = analysis.uses[k]
+        dense_pf = C.dense_pair_flops(a, p, outputs)
+        if analysis.unused[k]:
+            kinds[k] = "unused"
+            rows[k] = LeafCost(name, shape, "unused", "unused", 0.0, 0.0,
+                               "does not affect the outputs")
+            continue
+        if not uses:
+            kinds[k] = "dense"
+            rows[k] = LeafCost(name, shape, "fallback", "jacobian", pairs * dense_pf,
+                               a * p * isz, analysis.fallback[k] or "")
+            continue
+        choice, pf, eb = "dense", dense_pf, a * p * isz
+        if st.factorable(uses):
+            bsz, t, c, r = st.factored_sizes(uses[0])
+            fpf = C.factored_pair_flops(a, bsz, t, c + extra_c[k], r, outputs)
+            if folds[k] is not None:  # the folded bias would cost a dense contraction
+                fpf -= C.dense_pair_flops(a, sizes[folds[k]], outputs)
+            if fpf < dense_pf:  # the factored form only where it is cheaper per pair
+                choice, pf = "factored", fpf + (
+                    C.dense_pair_flops(a, sizes[folds[k]], outputs) if folds[k] is not None
+                    else 0.0)
+                eb = (bsz * t * (c + extra_c[k]) + a * bsz * t * r) * isz
+        if choice != "factored":
+            folds[k] = None
+        kinds[k] = choice
+        rows[k] = LeafCost(name, shape, analysis.rule(k), choice, pairs * pf, eb)
+    folded = {j for j in folds if j is not None}
+    for j in folded:
+        kinds[j] = "folded"
+        w = folds.index(j)
+        rows[j] = LeafCost(names[j], shapes[j], analysis.rule(j), "folded", 0.0, 0.0,
+                           f"input 1 of {names[w]}'s factors")
+    return rows, kinds, tuple(folds)
 
 
 def _use_local_flops(u: st.Use) -> float:

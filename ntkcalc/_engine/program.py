@@ -37,7 +37,8 @@ class Program:
         treedef: params tree structure; ``selection`` says which leaves are differentiated.
         outputs: outputs mode; num_outputs: O.
         method: "jacobian", "structured" or "jvp".
-        kinds: per differentiated leaf, "dense", "factored" or "unused".
+        kinds: per differentiated leaf, "dense", "factored", "folded" (a bias carried by its
+            layer's factors as the constant input 1) or "unused".
         analysis: the structured analysis (method "structured" only).
         jvp_chunk: basis vectors per lax.map step (method "jvp" only).
     """
@@ -51,6 +52,7 @@ class Program:
     kinds: tuple[str, ...]
     analysis: st.Analysis | None = None
     jvp_chunk: int = 8
+    folds: tuple[int | None, ...] = ()  # per leaf: a bias leaf folded into its factors
 
     # -- the per-example function -------------------------------------------------------------
     def merge(self, diff, other):
@@ -86,7 +88,8 @@ class Program:
     def _structured_one(self, diff, other, state, x):
         an = self.analysis
         fb_pos = [k for k, kind in enumerate(self.kinds) if kind == "dense" and not an.uses[k]]
-        uses = [u for k, kind in enumerate(self.kinds) if kind != "unused" for u in an.uses[k]]
+        uses = [u for k, kind in enumerate(self.kinds) if kind not in ("unused", "folded")
+                for u in an.uses[k]]
         state_leaves = jax.tree_util.tree_leaves(state)
 
         def run(fb_vals, probes):
@@ -104,14 +107,17 @@ class Program:
         reps = []
         fb_iter = iter(fb_jac)
         for k, kind in enumerate(self.kinds):
-            if kind == "unused":
+            if kind in ("unused", "folded"):
                 reps.append(None)
             elif not an.uses[k]:
                 reps.append(next(fb_iter))
             elif kind == "factored":
                 (u,) = an.uses[k]
                 fac = st.dot_factors if u.rule == "dense" else st.conv_factors
-                reps.append(fac(u, caps[u.path], cots[u.path]))
+                h, g = fac(u, caps[u.path], cots[u.path])
+                if self.folds and self.folds[k] is not None:
+                    h = jnp.concatenate([h, jnp.ones(h.shape[:-1] + (1,), h.dtype)], axis=-1)
+                reps.append((h, g))
             else:
                 reps.append(
                     st.local_vjp(an.uses[k], diff[k], [caps[u.path] for u in an.uses[k]],

@@ -57,6 +57,8 @@ class Use:
     params: dict
     in_avals: tuple  # abstract values of the primitive's operands (per example)
     out_aval: object
+    in_vars: tuple = ()  # the jaxpr variables of the operands and the output
+    out_var: object = None
 
     @property
     def permuting(self) -> bool:
@@ -72,6 +74,7 @@ class Analysis:
     uses: tuple[tuple[Use, ...], ...]  # per differentiated leaf; empty for fallback/unused
     fallback: tuple[str | None, ...]  # per leaf: reason for fallback, or None
     unused: tuple[bool, ...]
+    bias_of: tuple[int | None, ...] = ()  # per leaf: a bias leaf folded into its factors
 
     def rule(self, leaf: int) -> str:
         if self.unused[leaf]:
@@ -130,7 +133,8 @@ def analyze(closed, num_diff: int) -> Analysis:
                 touched[leaf] = True
                 uses[leaf].append(
                     Use(leaf, prefix + (i,), k, chain, RULES[name], eqn.primitive,
-                        dict(eqn.params), tuple(v.aval for v in eqn.invars), eqn.outvars[0].aval)
+                        dict(eqn.params), tuple(v.aval for v in eqn.invars), eqn.outvars[0].aval,
+                        tuple(eqn.invars), eqn.outvars[0])
                 )
                 continue
             sub = _sub_jaxpr(eqn) if name in CALLS else None
@@ -160,7 +164,41 @@ def analyze(closed, num_diff: int) -> Analysis:
     walk(closed.jaxpr, {v: (k, ()) for k, v in enumerate(closed.jaxpr.invars[:num_diff])}, ())
     final_uses = tuple(tuple(u) if fallback[k] is None else () for k, u in enumerate(uses))
     unused = tuple(not touched[k] for k in range(num_diff))
-    return Analysis(closed, num_diff, final_uses, tuple(fallback), unused)
+    return Analysis(closed, num_diff, final_uses, tuple(fallback), unused,
+                    _fold_biases(final_uses))
+
+
+def _fold_biases(uses: tuple[tuple[Use, ...], ...]) -> tuple[int | None, ...]:
+    """For y = h·W (+ b): the bias leaf b whose derivative is the W factor's extra input 1.
+
+    With h' = [h, 1] the factored pair (h', g) is the derivative of [W; b] (the same cotangent g
+    reaches both, as y and y + b differ by a constant), so the bias costs no contraction of its
+    own. Applies when b is added right after a factorable dot_general, broadcast over its
+    positions only (B = 1), and maps one-to-one onto the output features.
+    """
+    by_out = {}
+    for k, us in enumerate(uses):
+        if factorable(us) and us[0].rule == "dense" and us[0].operand == 1:
+            by_out[(us[0].path[:-1], us[0].out_var)] = k
+    bias_of: list[int | None] = [None] * len(uses)
+    for k, us in enumerate(uses):
+        if len(us) != 1 or us[0].rule != "bias" or not us[0].permuting:
+            continue
+        u = us[0]
+        other = u.in_vars[1 - u.operand]
+        w = by_out.get((u.path[:-1], other))
+        if w is None or bias_of[w] is not None:
+            continue
+        wu = uses[w][0]
+        b, t, _, r = factored_sizes(wu)
+        y = wu.out_aval.shape
+        bias_shape = u.in_avals[u.operand].shape
+        (lc, _), _ = wu.params["dimension_numbers"]
+        lead = wu.in_avals[0].ndim - len(lc)  # batch + lhs-free dims come before R
+        expected = (1,) * lead + tuple(y[lead:])
+        if b == 1 and tuple(u.out_aval.shape) == tuple(y) and tuple(bias_shape) == expected:
+            bias_of[w] = k
+    return tuple(bias_of)
 
 
 # -- evaluation with probes --------------------------------------------------------------------
