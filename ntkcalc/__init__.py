@@ -2,16 +2,51 @@
 
 The flow is one-way; each public name below says where it lives:
 
-- model → `Net` (``_adapters``): wrap a JAX function, a flax linen or nnx model;
+- model → `Net` (``_adapters``): wrap a JAX function, a flax linen or nnx model, a checkpoint;
 - `plan` (``_engine``): which method per parameter leaf, tile sizes, estimated cost;
-- tiles (``_tiles``): blocking, in-memory assembly;
-- `ntk`, `ntk_by_layer` (``_kernel``): the kernel as numpy arrays.
+- tiles (``_tiles``): blocking, the resumable store, devices and hosts;
+- `ntk`, `ntk_by_layer` (``_kernel``): the kernel as numpy arrays (or a store on disk);
+- analysis (``_analysis``): forecasts, kernel ridge and risk, spectrum, expressivity, alignment,
+  matrix-free operators;
+- workflows (``_workflows``): drift over a training run, the demo, the report, the command line.
 """
 
+from ._adapters.checkpoint import checkpoint_steps as checkpoint_steps
+from ._adapters.checkpoint import load_checkpoint as load_checkpoint
 from ._adapters.net import Net as Net
+from ._analysis.alignment import TaskSpectrum as TaskSpectrum
+from ._analysis.alignment import alignment as alignment
+from ._analysis.alignment import cka as cka
+from ._analysis.alignment import kernel_distance as kernel_distance
+from ._analysis.alignment import task_spectrum as task_spectrum
+from ._analysis.expressivity import FeatureRank as FeatureRank
+from ._analysis.expressivity import feature_rank as feature_rank
+from ._analysis.expressivity import feature_rank_of as feature_rank_of
+from ._analysis.forecast import Forecast as Forecast
+from ._analysis.forecast import forecast as forecast
+from ._analysis.hutchpp import Estimate as Estimate
+from ._analysis.hutchpp import estimate_alignment as estimate_alignment
+from ._analysis.hutchpp import estimate_frobenius as estimate_frobenius
+from ._analysis.hutchpp import estimate_participation_ratio as estimate_participation_ratio
+from ._analysis.hutchpp import estimate_trace as estimate_trace
+from ._analysis.learning_curve import LearningCurve as LearningCurve
+from ._analysis.learning_curve import learning_curve as learning_curve
+from ._analysis.operator import NTKOperator as NTKOperator
+from ._analysis.operator import ntk_operator as ntk_operator
+from ._analysis.ridge import RidgeFit as RidgeFit
+from ._analysis.ridge import ridge_fit as ridge_fit
+from ._analysis.risk import RiskEstimates as RiskEstimates
+from ._analysis.risk import risk as risk
+from ._analysis.spectrum import Spectrum as Spectrum
+from ._analysis.spectrum import effective_rank as effective_rank
+from ._analysis.spectrum import participation_ratio as participation_ratio
+from ._analysis.spectrum import spectrum as spectrum
 from ._engine.planner import Plan as Plan
 from ._engine.planner import plan as plan
 from ._kernel import ntk as ntk
 from ._kernel import ntk_by_layer as ntk_by_layer
+from ._workflows.drift import DEFAULT_THRESHOLD as DEFAULT_THRESHOLD
+from ._workflows.drift import Drift as Drift
+from ._workflows.drift import drift as drift
 
 __version__ = "0.1.0"

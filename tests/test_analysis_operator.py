@@ -62,7 +62,7 @@ def test_full_and_output_sum_modes(setup):
     op = ntk_operator(net, x[:300], outputs="full", batch=128)
     assert op.shape == (900, 900)
     np.testing.assert_allclose(op.matmat(v), full @ v, rtol=1e-10, atol=1e-9)
-    op_sum = ntk_operator(net, x[:300], outputs="output-sum", batch=128)
+    op_sum = ntk_operator(net, x[:300], outputs="logit-sum", batch=128)
     np.testing.assert_allclose(op_sum.matmat(v[:300]), summed @ v[:300], rtol=1e-10, atol=1e-9)
 
 

@@ -22,7 +22,7 @@ import scipy.sparse.linalg as spla
 from . import _checks
 from ._batches import batch_slices, pad_rows
 
-Outputs = Literal["trace", "full", "output-sum"]
+Outputs = Literal["trace", "full", "logit-sum"]
 
 
 def _lift(v_b: jnp.ndarray, mode: str, n_out: int) -> jnp.ndarray:
@@ -30,7 +30,7 @@ def _lift(v_b: jnp.ndarray, mode: str, n_out: int) -> jnp.ndarray:
     if mode == "full":  # v_b: (B, O, k) -> (k, B, O)
         return jnp.moveaxis(v_b, -1, 0)
     # v_b: (B, k)
-    if mode == "output-sum":
+    if mode == "logit-sum":
         return jnp.broadcast_to(v_b.T[:, :, None], (v_b.shape[1], v_b.shape[0], n_out))
     eye = jnp.eye(n_out, dtype=v_b.dtype)  # trace: probe (a, c) = v_c ⊗ e_a
     probes = v_b.T[None, :, :, None] * eye[:, None, None, :]  # (O, k, B, O)
@@ -41,7 +41,7 @@ def _lower(outs: jnp.ndarray, mode: str, n_out: int) -> jnp.ndarray:
     """The result block from the JVP outputs (S, B, O) of the probes."""
     if mode == "full":
         return jnp.moveaxis(outs, 0, -1)  # (B, O, k)
-    if mode == "output-sum":
+    if mode == "logit-sum":
         return jnp.sum(outs, axis=-1).T  # (B, k)
     s, b, _ = outs.shape
     per = outs.reshape(n_out, s // n_out, b, n_out)
@@ -147,7 +147,7 @@ def ntk_operator(net, x, *, outputs: Outputs = "trace", batch: int = 256) -> NTK
       probes each output with ``v ⊗ e_a`` (O VJPs and O JVPs per vector, vmapped).
     - "full": ``J Jᵀ`` over (example, output) pairs, (N·O, N·O), row index ``i·O + a``; one VJP
       and one JVP per vector.
-    - "output-sum": ``(Σ_a J_a)(Σ_a J_a)ᵀ``, (N, N): the kernel of the summed outputs.
+    - "logit-sum": ``(Σ_a J_a)(Σ_a J_a)ᵀ``, (N, N): the kernel of the summed outputs.
 
     Each product runs over the data in batches of ``batch`` examples (the last batch padded with
     zero cotangents, so each batch shape compiles once). It computes in the network's own dtype:
@@ -159,15 +159,15 @@ def ntk_operator(net, x, *, outputs: Outputs = "trace", batch: int = 256) -> NTK
     Args:
         net: an `ntkcalc.Net` (``net.call(params, state, x)``, differentiated in ``net.params``).
         x: (N, ...) inputs as an array, batch on axis 0.
-        outputs: "trace", "full" or "output-sum".
+        outputs: "trace", "full" or "logit-sum".
         batch: examples per batch.
 
     Returns:
         `NTKOperator` (a square, symmetric LinearOperator) with a ``matvecs`` counter.
     """
-    if outputs not in ("trace", "full", "output-sum"):
+    if outputs not in ("trace", "full", "logit-sum"):
         raise ValueError(
-            f"`outputs` must be 'trace', 'full' or 'output-sum', got {outputs!r}."
+            f"`outputs` must be 'trace', 'full' or 'logit-sum', got {outputs!r}."
         )
     if not hasattr(net, "call") or not hasattr(net, "params"):
         raise TypeError(
