@@ -130,7 +130,7 @@ def test_block_means_by_class(tmp_path):
     run = _write_run(tmp_path / "run", _results())
     doc = json.loads(_text(write_report(run)[1]))
     k = np.load(run / report.ARRAYS)["k_init"]
-    means = np.asarray(doc["sections"]["heatmap"]["block_means"]["initial"])
+    means = np.asarray(doc["sections"]["heatmap"]["block_means"]["initialization"])
     assert means[0, 2] == pytest.approx(k[:10, 20:].mean(), rel=1e-12)
     assert means[1, 1] == pytest.approx(k[10:20, 10:20].mean(), rel=1e-12)
 
@@ -183,3 +183,27 @@ def test_bad_sources(tmp_path):
     run = _write_run(tmp_path / "run", _results())
     with pytest.raises(TypeError, match="`out`"):
         write_report(run, out=5)
+
+
+def test_kernel_store_gets_spectrum_and_heatmap(tmp_path):
+    """A store written by ntk(..., store=...) of a tiny MLP: the spectrum against numpy."""
+    import jax
+    import jax.numpy as jnp
+
+    import ntkcalc
+
+    w = jax.random.normal(jax.random.key(0), (3, 16), jnp.float64)
+    v = jax.random.normal(jax.random.key(1), (16, 2), jnp.float64)
+    net = ntkcalc.Net(lambda p, x: jnp.tanh(x @ p["w"]) @ p["v"], {"w": w, "v": v})
+    x = np.random.default_rng(0).normal(size=(12, 3))
+    store = tmp_path / "kernel.zarr"
+    k = np.asarray(ntkcalc.ntk(net, x, store=str(store), progress=False))
+    html_path, json_path = write_report(store, out=tmp_path / "report")
+    page = _text(html_path)
+    assert re.findall(r'<section id="([^"]+)">', page) == ["summary", "cautions", "spectrum",
+                                                           "heatmap"]
+    doc = json.loads(_text(json_path))
+    np.testing.assert_allclose(doc["sections"]["spectrum"]["eigenvalues"],
+                               np.linalg.eigvalsh(k)[::-1], rtol=1e-10, atol=1e-12)
+    assert all(math.isfinite(v) for v in numbers_in(doc))
+    assert ("ill-conditioned" in " ".join(doc["cautions"])) == (np.linalg.cond(k) > 1e12)

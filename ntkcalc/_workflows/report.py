@@ -9,6 +9,9 @@ cautions from the numbers (a non-lazy run, an ill-conditioned kernel, float32) a
   ``heatmap``, ``drift``, ``forecast``, ``risk``, ``feature-rank``, ``setup``; every figure an
   embedded base64 PNG;
 - ``report.json``: ``{"summary": [5 lines], "cautions": [...], "sections": {id: numbers}}``.
+
+A kernel store (the ``store`` of ``ntk(net, x, store=...)``, a zarr group) gets a short report:
+summary, cautions, spectrum and heat map (in the stored order, no labels).
 """
 
 from __future__ import annotations
@@ -69,17 +72,64 @@ def _fmt(value) -> str:
     return str(value)
 
 
-def _load(source) -> tuple[str, dict, dict]:
+def _load_store(path: str) -> np.ndarray | None:
+    """The (N, N) kernel of an ntkcalc kernel store (traced over outputs), or None if not one."""
+    import zarr
+
+    if not os.path.isfile(os.path.join(path, "zarr.json")):
+        return None
+    group = zarr.open_group(path, mode="r")
+    if "ntkcalc" not in group.attrs or "kernel" not in group:
+        return None
+    k = np.asarray(group["kernel"][0])  # the first parameter group: the whole kernel
+    if k.ndim not in (2, 4) or k.shape[0] != k.shape[1]:
+        raise ValueError(
+            f"`source`={path!r} holds a kernel of shape {k.shape}: the report needs K(X, X), "
+            "square, in 'trace' or 'full' outputs."
+        )
+    if np.isnan(k).any():
+        raise ValueError(
+            f"`source`={path!r} is an incomplete kernel store ({int(np.isnan(k).sum())} entries "
+            "not computed): run the same `ntk(..., store=...)` call again to finish it."
+        )
+    return np.einsum("ijaa->ij", k) if k.ndim == 4 else k
+
+
+def _store_sections(path: str, k: np.ndarray) -> list[_Section]:
+    spec = spectrum(k)
+    cautions = _numeric_cautions(spec, str(k.dtype))
+    summary = [
+        f"Kernel store {path}: K(X, X) over {k.shape[0]} examples, {k.dtype}.",
+        f"Spectrum: decay exponent {spec.decay_exponent:.2f}, effective rank "
+        f"{spec.effective_rank:.1f}, condition number {_fmt(spec.condition_number)}.",
+        f"Cautions: {len(cautions) or 'none'}.",
+    ]
+    return [
+        _Section("summary", "Summary", "", {"lines": summary}, items=tuple(summary)),
+        _Section("cautions", "Cautions", "" if cautions else "None.", {"items": cautions},
+                 items=tuple(cautions)),
+        _spectrum_section(spec, ""),
+        _heatmap_section({"kernel": k}, np.zeros(k.shape[0], np.int64), ["all examples"],
+                         "The stored kernel, in the stored order of examples."),
+    ]
+
+
+def _load(source) -> tuple[str, str, list[_Section]]:
+    """Path, title and report sections of a demo run directory or a kernel store."""
     if not isinstance(source, str | os.PathLike):
         raise TypeError(
-            f"`source` must be a run directory path (str or os.PathLike), got "
+            f"`source` must be a run directory or kernel store path (str or os.PathLike), got "
             f"{type(source).__name__}."
         )
     path = os.path.abspath(os.fspath(source))
     results_path = os.path.join(path, RESULTS)
     if not os.path.isfile(results_path):
+        k = _load_store(path) if os.path.isdir(path) else None
+        if k is not None:
+            return path, "kernel store", _store_sections(path, k)
         raise FileNotFoundError(
-            f"`source`={path!r} holds no {RESULTS}: pass the directory `run_demo` wrote."
+            f"`source`={path!r} holds no {RESULTS} and is no ntkcalc kernel store: pass the "
+            "directory `run_demo` wrote, or the `store` of `ntk(..., store=...)`."
         )
     with open(results_path, encoding="utf-8") as fh:
         results = json.load(fh)
@@ -89,7 +139,7 @@ def _load(source) -> tuple[str, dict, dict]:
             "by `run_demo` (kind 'demo') are reported."
         )
     with np.load(os.path.join(path, ARRAYS)) as arrays:
-        return path, results, {k: arrays[k] for k in arrays.files}
+        return path, "pump condition demo", _sections(results, {k: arrays[k] for k in arrays.files})
 
 
 def _power_law(spec) -> float:
@@ -113,20 +163,26 @@ def _cautions(results: dict, spec) -> list[str]:
             "initialization, not the trained one (kernel distance to initialization at the last "
             f"checkpoint: {results['drift']['kernel_distance'][-1]:.3g})."
         )
+    return list(dict.fromkeys(out + _numeric_cautions(spec, results["dtype"])))
+
+
+def _numeric_cautions(spec, dtype: str) -> list[str]:
+    """Cautions on conditioning and precision, for any kernel."""
+    out = []
     cond = spec.condition_number
     if cond is None or not math.isfinite(cond) or cond > COND_WARN:
         out.append(
-            f"The initial kernel is ill-conditioned (condition number {_fmt(cond)}): kernel "
-            "solves at small ridges keep few significant digits, and the smallest eigenvalues "
-            "are at rounding level."
+            f"The kernel is ill-conditioned (condition number {_fmt(cond)}): kernel solves at "
+            "small ridges keep few significant digits, and the smallest eigenvalues are at "
+            "rounding level."
         )
-    if results["dtype"] != "float64":
+    if dtype != "float64":
         out.append(
-            f"Computed in {results['dtype']}: about 7 significant digits. Small eigenvalues, "
-            "the kernel distance at early steps and solves at small ridges are unreliable; enable "
-            "JAX x64 for float64."
+            f"Computed in {dtype}: about 7 significant digits. Small eigenvalues, kernel "
+            "distances near 0 and solves at small ridges are unreliable; enable JAX x64 for "
+            "float64."
         )
-    return list(dict.fromkeys(out))
+    return out
 
 
 def _summary(results: dict, spec, cautions: list[str]) -> list[str]:
@@ -163,17 +219,9 @@ def _block_means(k: np.ndarray, labels: np.ndarray, classes: int) -> list[list[f
     return ((onehot.T @ k @ onehot) / np.outer(counts, counts)).tolist()
 
 
-def _sections(results: dict, arrays: dict) -> list[_Section]:
-    k0, k1, labels = arrays["k_init"], arrays["k_final"], arrays["labels"]
-    spec = spectrum(k0)
+def _spectrum_section(spec, when: str) -> _Section:
     intercept = _power_law(spec)
-    cautions = _cautions(results, spec)
-    summary = _summary(results, spec, cautions)
-    d, tr, fc, dr, rk, fr = (results[k] for k in ("data", "training", "forecast", "drift", "risk",
-                                                  "feature_rank"))
-    names = d["class_names"]
-    classes = len(names)
-    spec_numbers = {
+    numbers = {
         "eigenvalues": spec.eigenvalues.tolist(), "decay_exponent": spec.decay_exponent,
         "decay_fit_range": list(spec.decay_fit_range), "decay_intercept": intercept,
         "effective_rank": spec.effective_rank, "participation_ratio": spec.participation_ratio,
@@ -181,8 +229,45 @@ def _sections(results: dict, arrays: dict) -> list[_Section]:
         "lambda_max": float(spec.eigenvalues[0]), "numerical_rank": spec.numerical_rank,
         "convergence_rate": spec.convergence_rate,
     }
-    heat = {"initial": _block_means(k0, labels, classes),
-            "final": _block_means(k1, labels, classes)}
+    return _Section(
+        "spectrum", f"Kernel spectrum {when}".strip(),
+        "Eigenvalues of the kernel (trace over outputs) against their rank; the line is the "
+        "least-squares power law over the listed ranks.", numbers,
+        rows=(("decay exponent α", _fmt(spec.decay_exponent)),
+              ("fit ranks", f"{spec.decay_fit_range[0]}–{spec.decay_fit_range[1]}"),
+              ("largest eigenvalue", _fmt(numbers["lambda_max"])),
+              ("smallest eigenvalue", _fmt(spec.lambda_min)),
+              ("condition number", _fmt(spec.condition_number)),
+              ("effective rank", _fmt(spec.effective_rank)),
+              ("participation ratio", _fmt(spec.participation_ratio)),
+              ("numerical rank", _fmt(spec.numerical_rank))),
+        figures=(plots.png(plots.spectrum_figure(
+            spec.eigenvalues, exponent=spec.decay_exponent, fit_range=spec.decay_fit_range,
+            intercept=intercept)),),
+    )
+
+
+def _heatmap_section(kernels: dict, labels, names, text: str) -> _Section:
+    means = {title: _block_means(k, labels, len(names)) for title, k in kernels.items()}
+    pairs = [(a, b) for a in range(len(names)) for b in range(a, len(names))]
+    return _Section(
+        "heatmap", "The kernel, sorted by class", text,
+        {"class_names": list(names), "class_counts": np.bincount(labels).tolist(),
+         "block_means": means},
+        rows=tuple((f"{names[a]} × {names[b]}", " → ".join(
+            f"{m[a][b]:.4g}" for m in means.values())) for a, b in pairs),
+        figures=(plots.png(plots.heatmap_figure(kernels, labels, names)),),
+    )
+
+
+def _sections(results: dict, arrays: dict) -> list[_Section]:
+    k0, k1, labels = arrays["k_init"], arrays["k_final"], arrays["labels"]
+    spec = spectrum(k0)
+    cautions = _cautions(results, spec)
+    summary = _summary(results, spec, cautions)
+    d, tr, fc, dr, rk, fr = (results[k] for k in ("data", "training", "forecast", "drift", "risk",
+                                                  "feature_rank"))
+    names = d["class_names"]
     last = tr["steps"]
     idx = int(np.argmin(np.abs(np.asarray(rk["ridges"]) - rk["chosen_ridge"])))
     return [
@@ -191,33 +276,12 @@ def _sections(results: dict, arrays: dict) -> list[_Section]:
                  "Where the numbers below can mislead." if cautions else
                  "None: the run is lazy, the kernel well-conditioned, and the computation in "
                  "float64.", {"items": cautions}, items=tuple(cautions)),
-        _Section(
-            "spectrum", "Kernel spectrum at initialization",
-            "Eigenvalues of the train-train kernel (trace over outputs) against their rank; the "
-            "line is the least-squares power law over the listed ranks.", spec_numbers,
-            rows=(("decay exponent α", _fmt(spec.decay_exponent)),
-                  ("fit ranks", f"{spec.decay_fit_range[0]}–{spec.decay_fit_range[1]}"),
-                  ("largest eigenvalue", _fmt(spec_numbers["lambda_max"])),
-                  ("smallest eigenvalue", _fmt(spec.lambda_min)),
-                  ("condition number", _fmt(spec.condition_number)),
-                  ("effective rank", _fmt(spec.effective_rank)),
-                  ("participation ratio", _fmt(spec.participation_ratio)),
-                  ("numerical rank", _fmt(spec.numerical_rank))),
-            figures=(plots.png(plots.spectrum_figure(
-                spec.eigenvalues, exponent=spec.decay_exponent, fit_range=spec.decay_fit_range,
-                intercept=intercept)),),
-        ),
-        _Section(
-            "heatmap", "The kernel, sorted by class",
+        _spectrum_section(spec, "at initialization"),
+        _heatmap_section(
+            {"initialization": k0, f"step {last}": k1}, labels, names,
             f"Train-train kernel at initialization and after {last} steps, examples grouped by "
-            "condition. The table gives the mean kernel value of each pair of classes.",
-            {"class_names": names, "class_counts": d["train_counts"], "block_means": heat},
-            rows=tuple((f"{names[a]} × {names[b]}",
-                        f"{heat['initial'][a][b]:.4g} → {heat['final'][a][b]:.4g}")
-                       for a in range(classes) for b in range(a, classes)),
-            figures=(plots.png(plots.heatmap_figure(
-                {"initialization": k0, f"step {last}": k1}, labels, names)),),
-        ),
+            "condition. The table gives the mean kernel value of each pair of classes, at "
+            "initialization → at the last step."),
         _Section(
             "drift", "Kernel drift and alignment over training",
             "Kernel distance 1 − ⟨Θ₀, Θ_t⟩/(‖Θ₀‖‖Θ_t‖) to the initial kernel, and centered "
@@ -336,19 +400,19 @@ def write_report(source, *, out=None) -> tuple[str, str]:
     """Write ``report.html`` and ``report.json`` for a run directory.
 
     Args:
-        source: the directory `run_demo` wrote (with ``results.json`` and ``arrays.npz``).
+        source: the directory `run_demo` wrote (with ``results.json`` and ``arrays.npz``), or a
+            kernel store of K(X, X) written by ``ntk(..., store=...)``.
         out: directory for the two files (created); default ``source``.
 
     Returns:
         ``(html_path, json_path)``, absolute paths.
     """
-    path, results, arrays = _load(source)
+    path, what, sections = _load(source)
     if out is not None and not isinstance(out, str | os.PathLike):
         raise TypeError(f"`out` must be a directory path or None, got {type(out).__name__}.")
     target = path if out is None else os.path.abspath(os.fspath(out))
     os.makedirs(target, exist_ok=True)
-    sections = _sections(results, arrays)
-    title = "ntkcalc report: pump condition demo"
+    title = f"ntkcalc report: {what}"
     page = "\n".join([
         "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
         f"<title>{html.escape(title)}</title><style>{_CSS}</style></head><body>",
