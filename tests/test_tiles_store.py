@@ -257,3 +257,27 @@ def test_foreign_zarr_data_is_not_overwritten(model, tmp_path):
     zarr.open_group(tmp_path / "other.zarr", mode="a").create_array("a", shape=(2,), dtype="i4")
     with pytest.raises(ValueError, match="holds zarr data that ntkcalc did not write"):
         ntkcalc.ntk(net, x, store=tmp_path / "other.zarr", progress=False)
+
+
+def test_interrupted_creation_resumes(model, tmp_path, monkeypatch):
+    # A run stopped while creating the store (here: before its second array) leaves a store the
+    # next run completes, instead of one it refuses as foreign.
+    import zarr
+
+    net, x, ref = model
+    create = zarr.Group.create_array
+
+    def stop_at_checksums(self, name, **kw):
+        if name == "checksums":
+            raise KeyboardInterrupt
+        return create(self, name, **kw)
+
+    monkeypatch.setattr(zarr.Group, "create_array", stop_at_checksums)
+    with pytest.raises(KeyboardInterrupt):
+        ntkcalc.ntk(net, x, outputs="full", store=tmp_path / "k.zarr", memory=SMALL,
+                    progress=False)
+    monkeypatch.setattr(zarr.Group, "create_array", create)
+    view = ntkcalc.ntk(net, x, outputs="full", store=tmp_path / "k.zarr", memory=SMALL,
+                       progress=False)
+    assert view.info.computed == view.info.tiles
+    assert_close(np.asarray(view), ref, rtol=1e-12)

@@ -85,20 +85,23 @@ class TileStore:
 
     @classmethod
     def create(cls, store, fingerprint: dict, plan) -> TileStore:
-        """Create the store (replacing nothing: an existing group is opened and validated)."""
+        """Create the store, or complete one whose creation was interrupted; never overwrites."""
         group = zarr.open_group(store, mode="a")
         shape = (len(plan.group_names),) + tuple(plan.shape)
         chunks = (shape[0], plan.block, plan.block) + shape[3:]
         nb = (num_blocks(plan.n1, plan.block), num_blocks(plan.n2, plan.block))
         config = {"write_empty_chunks": True}
-        if ATTR not in group.attrs and any(True for _ in group.keys()):
-            raise ValueError(NOT_A_STORE.format(store=describe(store)))
+        if ATTR not in group.attrs:
+            if any(True for _ in group.keys()):
+                raise ValueError(NOT_A_STORE.format(store=describe(store)))
+            # The fingerprint goes first: a run killed while creating the arrays resumes them.
+            group.attrs[ATTR] = {"fingerprint": fingerprint, "layout": LAYOUT}
         if "kernel" not in group:
             group.create_array("kernel", shape=shape, chunks=chunks, dtype=plan.dtype,
                                fill_value=np.nan, compressors=None, config=config)
+        if "checksums" not in group:
             group.create_array("checksums", shape=nb, chunks=(1, 1), dtype="uint64",
                                fill_value=0, compressors=None, config=config)
-            group.attrs[ATTR] = {"fingerprint": fingerprint, "layout": LAYOUT}
         return cls.open(store, plan)
 
     @classmethod
