@@ -34,15 +34,22 @@ def _load(path):
 
 @pytest.mark.multiprocess
 def test_four_forced_devices(single, tmp_path):
-    # 1 vs 4 devices, in memory and into a store: same tiles, so bit-identical in float64.
+    # 1 vs 4 devices, in memory and into a store, float64 (1e-12) and float32 (1e-6).
     mem, ref = single
-    runs = {"mem4": {}, "store4": {"store": str(tmp_path / "s.zarr")}, "mem1of4": {"use": 1}}
+    runs = {"mem4": {}, "store4": {"store": str(tmp_path / "s.zarr")}, "mem1of4": {"use": 1},
+            "mem4_f32": {"float32": True}, "mem1of4_f32": {"float32": True, "use": 1}}
     for name, run in runs.items():
         run["out"] = str(tmp_path / f"{name}.npy")
     proc = run_child({"n": N, "outputs": "full", "memory": SMALL, "devices": 4,
                       "runs": list(runs.values())})
     assert proc.returncode == 0, proc.stdout + proc.stderr
+    got32 = {name: _load(runs[name]["out"])[0] for name in ("mem4_f32", "mem1of4_f32")}
+    assert got32["mem4_f32"].dtype == np.float32
+    assert_close(got32["mem4_f32"], got32["mem1of4_f32"], rtol=1e-6)  # float32: 1e-6 relative
+    assert_close(got32["mem4_f32"], ref, rtol=1e-5)
     for name, run in runs.items():
+        if name.endswith("_f32"):
+            continue
         got, info = _load(run["out"])
         assert_close(got, ref, rtol=1e-12)
         if name == "store4":
@@ -98,3 +105,13 @@ def test_two_local_devices_argument_checks():
     dev = jax.local_devices()[0]
     with pytest.raises(ValueError, match="lists a device twice"):
         ntkcalc.ntk(net, x, devices=[dev, dev])
+
+
+def test_several_processes_need_a_store(monkeypatch):
+    # Without a shared store the processes' tiles would have nowhere to meet: refused up front.
+    from ntkcalc._tiles import drive
+
+    net, x = mlp(4)
+    monkeypatch.setattr(drive, "process", lambda: (0, 2))
+    with pytest.raises(ValueError, match="`store`=None with 2 JAX processes"):
+        ntkcalc.ntk(net, x, progress=False)

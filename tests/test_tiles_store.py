@@ -57,8 +57,9 @@ CHILD = textwrap.dedent("""
         TileStore.write = killing_write
     for run in spec.get("runs", [spec]):  # several kernels in one process share compilations
         devices = jax.local_devices()[: run["use"]] if run.get("use") else None
-        k = ntkcalc.ntk(net, x, outputs=spec["outputs"], memory=spec.get("memory"),
-                        store=run.get("store"), progress=False, devices=devices)
+        with jax.enable_x64(not run.get("float32")):
+            k = ntkcalc.ntk(net, x, outputs=spec["outputs"], memory=spec.get("memory"),
+                            store=run.get("store"), progress=False, devices=devices)
         if run.get("out"):
             np.save(run["out"], np.asarray(k))
             info = getattr(k, "info", None)
@@ -100,6 +101,19 @@ def test_store_equals_in_memory_and_reference(model, tmp_path, memory):
     assert_close(np.asarray(view), ref, rtol=1e-12)
     np.testing.assert_array_equal(view[3:9, 2], np.asarray(view)[3:9, 2])
     assert view.info.computed == view.info.tiles
+
+
+def test_store_equals_in_memory_float32(model, tmp_path):
+    # Reference: the float32 in-memory kernel, 1e-6 relative (tiles may differ: see above).
+    import jax
+
+    net, x, _ = model
+    with jax.enable_x64(False):
+        view = ntkcalc.ntk(net, x, outputs="full", store=tmp_path / "k.zarr", memory="50KB",
+                           progress=False)
+        mem = ntkcalc.ntk(net, x, outputs="full", memory="50KB", progress=False)
+    assert view.dtype == mem.dtype == np.float32
+    assert_close(np.asarray(view), mem, rtol=1e-6)
 
 
 def test_four_tile_sizes_reached():
@@ -281,3 +295,25 @@ def test_interrupted_creation_resumes(model, tmp_path, monkeypatch):
                        progress=False)
     assert view.info.computed == view.info.tiles
     assert_close(np.asarray(view), ref, rtol=1e-12)
+
+
+@pytest.mark.parametrize("progress", [True, False])
+def test_progress_bar_counts_tiles_to_compute(model, tmp_path, monkeypatch, progress):
+    # The bar's total is what is left to compute, and it reaches it; progress=False disables it.
+    net, x, _ = model
+    bars = []
+
+    def recording_bar(total, *, enabled, where):
+        b = real_bar(total, enabled=enabled, where=where)
+        bars.append((b, b.disable))
+        return b
+
+    real_bar = drive.bar
+    monkeypatch.setattr(drive, "bar", recording_bar)
+    store = tmp_path / "k.zarr"
+    for _ in range(2):
+        ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, progress=progress)
+    assert [b.total for b, _ in bars] == [6, 0]
+    assert all(disabled is (not progress) for _, disabled in bars)
+    if progress:  # a disabled bar does not count
+        assert [b.n for b, _ in bars] == [6, 0]
