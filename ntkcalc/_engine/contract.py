@@ -29,17 +29,11 @@ _DENSE = {
     "logit-sum": "iap,jap->ij",
     "diagonal": "iap,jap->ija",
 }
-_GRAM = {
-    "full": "iaBtR,jbBsR->ijabBts",
-    "trace": "iaBtR,jaBsR->ijBts",
-    "logit-sum": "iaBtR,jaBsR->ijBts",
-    "diagonal": "iaBtR,jaBsR->ijaBts",
-}
-_COMBINE = {
-    "full": "ijBts,ijabBts->ijab",
-    "trace": "ijBts,ijBts->ij",
-    "logit-sum": "ijBts,ijBts->ij",
-    "diagonal": "ijBts,ijaBts->ija",
+_FACTORED = {
+    "full": "ijBts,iaBtR,jbBsR->ijab",
+    "trace": "ijBts,iaBtR,jaBsR->ij",
+    "logit-sum": "ijBts,iaBtR,jaBsR->ij",
+    "diagonal": "ijBts,iaBtR,jaBsR->ija",
 }
 
 
@@ -55,16 +49,20 @@ def contract_dense(j1, j2, outputs: str):
 
 
 def contract_factored(h1, g1, h2, g2, outputs: str):
-    """Kernel tile of one factored leaf: h (b, B, T, C), g (b, A, B, T, R)."""
+    """Kernel tile of one factored leaf: h (b, B, T, C), g (b, A, B, T, R).
+
+    The input Gram ``Σ_C h1 h2`` comes first; the order of the remaining three-way contraction
+    (cotangent Gram first, or the input Gram against one cotangent first) is left to the
+    einsum path optimiser, which picks the cheaper by FLOPs.
+    """
     hh = jnp.einsum("iBtC,jBsC->ijBts", h1, h2, precision=HIGHEST)
-    gg = jnp.einsum(_GRAM[outputs], g1, g2, precision=HIGHEST)
-    return jnp.einsum(_COMBINE[outputs], hh, gg, precision=HIGHEST)
+    return jnp.einsum(_FACTORED[outputs], hh, g1, g2, precision=HIGHEST, optimize="optimal")
 
 
 def dense_from_factored(h, g):
-    """The dense per-example derivative of a factored leaf, (b, A, B·C·R)."""
-    j = jnp.einsum("iBtC,iaBtR->iaBCR", h, g, precision=HIGHEST)
-    return j.reshape(j.shape[0], j.shape[1], -1)
+    """The dense derivative (A, B·C·R) of one example's factors h (B, T, C), g (A, B, T, R)."""
+    j = jnp.einsum("BtC,aBtR->aBCR", h, g, precision=HIGHEST)
+    return j.reshape(j.shape[0], -1)
 
 
 def contract(reps1, reps2, kinds, group_index, num_groups: int, outputs: str, tile: tuple):

@@ -56,9 +56,14 @@ def dense_pair_flops(a: int, p: int, outputs: str) -> float:
 
 
 def factored_pair_flops(a: int, b: int, t: int, c: int, r: int, outputs: str) -> float:
-    """Contraction FLOPs per pair of examples for one factored leaf."""
+    """Contraction FLOPs per pair of examples for one factored leaf: the input Gram, then the
+    cheaper of (cotangent Gram, then combine) and (input Gram against one cotangent, then the
+    other), as the einsum path optimiser will choose."""
     mode = a * a if outputs == "full" else a
-    return 2.0 * b * t * t * c + 2.0 * b * t * t * r * mode + b * t * t * mode
+    hh = 2.0 * b * t * t * c
+    gram_first = 2.0 * b * t * t * r * mode + b * t * t * mode
+    one_side_first = 2.0 * b * t * t * a * r + 2.0 * b * t * r * mode
+    return hh + min(gram_first, one_side_first)
 
 
 def factored_pair_elements(a: int, b: int, t: int, outputs: str) -> float:

@@ -23,7 +23,7 @@ import jax.numpy as jnp
 from jax import lax
 
 from . import structured as st
-from .contract import contract
+from .contract import contract, dense_from_factored
 from .options import basis_size, tile_shape
 from .select import Selection
 
@@ -111,13 +111,15 @@ class Program:
                 reps.append(None)
             elif not an.uses[k]:
                 reps.append(next(fb_iter))
-            elif kind == "factored":
+            elif st.factorable(an.uses[k]):
                 (u,) = an.uses[k]
                 fac = st.dot_factors if u.rule == "dense" else st.conv_factors
                 h, g = fac(u, caps[u.path], cots[u.path])
                 if self.folds and self.folds[k] is not None:
                     h = jnp.concatenate([h, jnp.ones(h.shape[:-1] + (1,), h.dtype)], axis=-1)
-                reps.append((h, g))
+                # Dense from the factors is one batched matmul (for a conv, over image patches),
+                # and its entries are a permutation of the leaf's: the kernel is unchanged.
+                reps.append((h, g) if kind == "factored" else dense_from_factored(h, g))
             else:
                 reps.append(
                     st.local_vjp(an.uses[k], diff[k], [caps[u.path] for u in an.uses[k]],

@@ -1,0 +1,255 @@
+"""The benchmark: ``python -m ntkcalc.bench`` (also ``ntkcalc bench``).
+
+Every measurement runs in a fresh subprocess, so its peak RSS is its own. Each row times the
+hand recipe users write today — ``jax.jit(jax.vmap(jax.jacrev(f)))`` over examples plus an
+einsum — and each ntkcalc method on the same model and inputs, in float32 at matmul precision
+"highest". ``seconds`` is the second call (compiled); ``first`` includes tracing and compilation.
+
+Rows: the MLP 784-512-512-512-10 (0.93M parameters), a CNN with 3 conv layers (0.33M), a
+transformer encoder block on 16 tokens, and the dataset-scale rows of `ntkcalc._tiles.bench_scale`.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import time
+
+MODELS = {
+    "mlp": "MLP 784-512-512-512-10 (relu, 0.93M params)",
+    "cnn": "CNN 3×conv3x3 stride 2 (64-128-192) + dense, 28×28×1 (0.33M params)",
+    "transformer": "encoder block: embed 1000×64, 4-head attention, LayerNorm, MLP 256, 16 tokens",
+}
+
+
+def _model(name: str):
+    import flax.linen as nn
+    import jax
+    import numpy as np
+
+    import ntkcalc
+
+    rng = np.random.default_rng(0)
+    if name == "mlp":
+        class MLP(nn.Module):
+            @nn.compact
+            def __call__(self, x):
+                for w in (512, 512, 512):
+                    x = nn.relu(nn.Dense(w)(x))
+                return nn.Dense(10)(x)
+
+        module, x = MLP(), rng.normal(size=(4096, 784)).astype(np.float32)
+    elif name == "cnn":
+        class CNN(nn.Module):
+            @nn.compact
+            def __call__(self, x):
+                for c in (64, 128, 192):
+                    x = nn.relu(nn.Conv(c, (3, 3), strides=(2, 2))(x))
+                return nn.Dense(10)(x.reshape(x.shape[0], -1))
+
+        module, x = CNN(), rng.normal(size=(256, 28, 28, 1)).astype(np.float32)
+    elif name == "transformer":
+        class Encoder(nn.Module):
+            @nn.compact
+            def __call__(self, tokens):
+                h = nn.Embed(1000, 64)(tokens)
+                a = nn.MultiHeadDotProductAttention(num_heads=4)(nn.LayerNorm()(h))
+                h = h + a
+                h = h + nn.Dense(64)(nn.gelu(nn.Dense(256)(nn.LayerNorm()(h))))
+                return nn.Dense(10)(h.mean(axis=1))
+
+        module, x = Encoder(), rng.integers(0, 1000, size=(256, 16)).astype(np.int32)
+    else:
+        raise ValueError(f"unknown benchmark model {name!r}: use one of {sorted(MODELS)}")
+    variables = module.init(jax.random.key(0), x[:1])
+    return ntkcalc.Net.from_linen(module, variables), x
+
+
+def _recipe(net, outputs: str):
+    """The hand recipe: per-example Jacobians by vmap(jacrev), then an einsum per leaf."""
+    import jax
+    import jax.numpy as jnp
+
+    f = lambda p, x: net.apply(p, x[None]).reshape(-1)
+    jac = jax.vmap(jax.jacrev(f), (None, 0))
+    spec = {"full": "iap,jbp->ijab", "trace": "iap,jap->ij"}[outputs]
+
+    @jax.jit
+    def kernel(params, x):
+        leaves = jax.tree_util.tree_leaves(jac(params, x))
+        return sum(jnp.einsum(spec, j.reshape(j.shape[0], j.shape[1], -1),
+                              j.reshape(j.shape[0], j.shape[1], -1), precision="highest")
+                   for j in leaves)
+
+    return lambda x: kernel(net.params, x)
+
+
+def _timed(fn):
+    import jax
+
+    t0 = time.perf_counter()
+    jax.block_until_ready(fn())
+    first = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    out = jax.block_until_ready(fn())
+    return first, time.perf_counter() - t0, out
+
+
+def _child(spec: dict) -> dict:
+    import resource
+
+    import jax
+    import numpy as np
+
+    import ntkcalc
+    from ntkcalc._engine.cost import machine_rate
+
+    jax.config.update("jax_default_matmul_precision", "highest")
+    net, x = _model(spec["model"])
+    x = x[: spec["n"]]
+    out: dict = {}
+    if spec["method"] == "recipe":
+        fn = _recipe(net, spec["outputs"])
+        first, second, _ = _timed(lambda: fn(x))
+    else:
+        plan = ntkcalc.plan(net, x, outputs=spec["outputs"], method=spec["method"],
+                            memory=spec.get("memory"))
+        out.update(planned=plan.method, estimate_s=plan.seconds, flops=plan.flops,
+                   block=plan.block)
+        first, second, _ = _timed(lambda: ntkcalc.ntk(
+            net, x, outputs=spec["outputs"], method=spec["method"], memory=spec.get("memory"),
+            progress=False))
+        out["matmul_flops_per_s"] = machine_rate("float32")
+    out.update(first=first, seconds=second,
+               peak_rss_gb=resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6)
+    del np
+    return out
+
+
+def spawn(module: str, spec: dict, *, devices: int | None = None, timeout: float = 3600) -> dict:
+    """Run ``module``'s child entry point on ``spec`` in a fresh process; its JSON answer."""
+    env = dict(os.environ)
+    env.pop("XLA_FLAGS", None)
+    if devices:
+        env["XLA_FLAGS"] = f"--xla_force_host_platform_device_count={devices}"
+    proc = subprocess.run([sys.executable, "-m", module, "--child", json.dumps(spec)], env=env,
+                          capture_output=True, text=True, timeout=timeout)
+    if proc.returncode != 0:
+        raise RuntimeError(f"benchmark child failed ({spec}):\n{proc.stdout}\n{proc.stderr}")
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+ROWS = [
+    # (model, N, outputs, methods to time, notes)
+    ("mlp", 64, "full", ("recipe", "jacobian", "jvp", "structured", "auto")),
+    ("mlp", 128, "full", ("recipe", "jacobian", "structured", "auto")),
+    ("mlp", 128, "trace", ("recipe", "jacobian", "structured", "auto")),
+    ("cnn", 32, "full", ("recipe", "jacobian", "structured", "auto")),
+    ("transformer", 32, "trace", ("recipe", "jacobian", "structured", "auto")),
+    ("mlp", 1024, "trace", ("structured", "auto")),
+]
+QUICK = [
+    ("mlp", 64, "full", ("recipe", "structured", "auto")),
+    ("cnn", 16, "full", ("recipe", "structured", "auto")),
+]
+
+
+def run(rows, *, log=print) -> list[dict]:
+    table = []
+    for model, n, outputs, methods in rows:
+        for method in methods:
+            spec = {"model": model, "n": n, "outputs": outputs, "method": method}
+            res = spawn("ntkcalc.bench", spec)
+            row = {"model": model, "N": n, "outputs": outputs, "method": method, **res}
+            table.append(row)
+            log(_format_row(row))
+    return table
+
+
+def jacobian_memory_row(*, log=print) -> dict:
+    """'jacobian' on the MLP trace kernel at N=512 within a 4 GB budget (the recipe's Jacobians
+    alone would need 512·10·932,362·4 B ≈ 19 GB)."""
+    spec = {"model": "mlp", "n": 512, "outputs": "trace", "method": "jacobian", "memory": "4GB"}
+    res = spawn("ntkcalc.bench", spec)
+    row = {"model": "mlp", "N": 512, "outputs": "trace", "method": "jacobian (memory=4GB)", **res}
+    log(_format_row(row))
+    return row
+
+
+def _format_row(r: dict) -> str:
+    extra = f" planned={r['planned']}" if "planned" in r else ""
+    return (f"{r['model']:<12} N={r['N']:<5} {r['outputs']:<6} {r['method']:<22} "
+            f"{r['seconds']:9.3f} s  (first {r['first']:.2f} s)  peak {r['peak_rss_gb']:.2f} GB"
+            + extra)
+
+
+def summarize(table: list[dict]) -> list[str]:
+    """Ratios against the recipe and against the fastest explicit method, per row."""
+    lines = []
+    keys = sorted({(r["model"], r["N"], r["outputs"]) for r in table},
+                  key=lambda k: (k[0], k[1], k[2]))
+    for key in keys:
+        rows = {r["method"]: r for r in table if (r["model"], r["N"], r["outputs"]) == key}
+        auto = rows.get("auto")
+        if auto is None:
+            continue
+        parts = [f"{key[0]} N={key[1]} {key[2]}: auto ({auto.get('planned')}) "
+                 f"{auto['seconds']:.3f} s"]
+        if "recipe" in rows:
+            parts.append(f"{rows['recipe']['seconds'] / auto['seconds']:.1f}× faster than the "
+                         "recipe")
+        explicit = [r for m, r in rows.items() if m in ("jacobian", "jvp", "structured")]
+        if explicit:
+            best = min(explicit, key=lambda r: r["seconds"])
+            parts.append(f"{auto['seconds'] / best['seconds']:.2f}× the fastest explicit "
+                         f"({best['method']})")
+        if key == ("mlp", 1024, "trace"):
+            achieved = auto["flops"] / auto["seconds"]
+            parts.append(f"contraction {achieved / 1e9:.1f} GFLOP/s = "
+                         f"{100 * achieved / auto['matmul_flops_per_s']:.0f}% of a jitted matmul "
+                         f"({auto['matmul_flops_per_s'] / 1e9:.1f} GFLOP/s)")
+        lines.append("; ".join(parts))
+    return lines
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else list(argv)
+    if argv[:1] == ["--child"]:
+        print(json.dumps(_child(json.loads(argv[1]))))
+        return 0
+    parser = argparse.ArgumentParser(
+        prog="ntkcalc bench", description=__doc__.split("\n\n")[0],
+        epilog="example:\n  ntkcalc bench --quick\n  ntkcalc bench --scale --json out.json",
+        formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--quick", action="store_true", help="two small rows only")
+    parser.add_argument("--scale", action="store_true",
+                        help="also run the dataset-scale rows (memory budget, store, devices)")
+    parser.add_argument("--json", help="write every row to this JSON file")
+    args = parser.parse_args(argv)
+    import platform
+
+    print(f"ntkcalc bench on {platform.machine()} {os.cpu_count()} CPU cores, "
+          f"python {platform.python_version()}")
+    table = run(QUICK if args.quick else ROWS)
+    if not args.quick:
+        table.append(jacobian_memory_row())
+    if args.scale:
+        from ._tiles import bench_scale
+
+        for r in bench_scale.memory_budget() + bench_scale.device_throughput():
+            print(r)
+            table.append(r)
+    print()
+    for line in summarize(table):
+        print(line)
+    if args.json:
+        with open(args.json, "w") as f:
+            json.dump(table, f, indent=1)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
