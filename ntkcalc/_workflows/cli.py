@@ -52,7 +52,9 @@ def build_parser() -> argparse.ArgumentParser:
     demo = _subparser(sub, "demo",
                       help="Train a small network, analyse its kernel, write a report.",
                       example="ntkcalc demo out/ --scale small")
-    demo.add_argument("out_dir", help="directory for the run, its checkpoints and the report")
+    demo.add_argument("out_dir", nargs="?", default="ntkcalc-demo",
+                      help="directory for the run, its checkpoints and the report "
+                      "(default: ./ntkcalc-demo)")
     demo.add_argument("--scale", choices=("full", "small"), default="full",
                       help="'small' runs in seconds (default: full)")
     demo.add_argument("--quiet", action="store_true", help="no progress messages")
