@@ -10,10 +10,11 @@ from ._engine.select import ParamFilter
 from ._tiles.drive import compute
 
 _SCALE_DOC = """\
-        memory: peak-memory budget of this process (bytes or e.g. ``"2GB"``; default half the
-            memory available now). Tiles are planned to fit it together with the in-memory
-            result; when the result alone does not fit, the error says to pass ``store``. The
-            planner's estimate is not a hard limit: see docs/scale.md for measured peaks.
+        memory: budget for the computation's working memory (bytes or e.g. ``"2GB"``; default
+            half the memory available now). Tiles are planned by estimate to fit it together
+            with the in-memory result; when the result alone does not fit, the error says to
+            pass ``store``. Not a hard limit on the process: the JAX runtime (≈ 0.4 GB on CPU)
+            comes on top and the estimate can be low at small budgets (docs/scale.md).
         store: None (kernel in memory), or a directory path / URL / zarr store where the kernel
             is written tile by tile as a zarr v3 array. Then a read-only `StoredKernel` view is
             returned (``np.asarray(view)`` loads it) and a call repeated with the same arguments
@@ -22,7 +23,8 @@ _SCALE_DOC = """\
             computes its share of tiles into the same store.
         progress: show a progress bar over tiles (tqdm, terminal or notebook) once a run lasts
             over a second; log lines go to the ``logging`` logger ``"ntkcalc"`` either way.
-        devices: JAX devices of this process to spread tiles over (default all local devices)."""
+        devices: JAX devices of this process to spread tiles over (default all local devices).
+            Forced CPU devices share the same cores and measured no faster than one."""
 
 
 def ntk(
