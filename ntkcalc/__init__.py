@@ -11,6 +11,8 @@ The flow is one-way; each public name below says where it lives:
 - workflows (``_workflows``): drift over a training run, the demo, the report, the command line.
 """
 
+__version__ = "0.1.0"
+
 from ._adapters.checkpoint import checkpoint_steps as checkpoint_steps
 from ._adapters.checkpoint import load_checkpoint as load_checkpoint
 from ._adapters.net import Net as Net
@@ -45,8 +47,12 @@ from ._engine.planner import Plan as Plan
 from ._engine.planner import plan as plan
 from ._kernel import ntk as ntk
 from ._kernel import ntk_by_layer as ntk_by_layer
+from ._tiles.view import RunInfo as RunInfo
+from ._tiles.view import StoredKernel as StoredKernel
+from ._workflows.demo import DemoResult as DemoResult
+from ._workflows.demo import run_demo as run_demo
 from ._workflows.drift import DEFAULT_THRESHOLD as DEFAULT_THRESHOLD
 from ._workflows.drift import Drift as Drift
 from ._workflows.drift import drift as drift
+from ._workflows.report import write_report as write_report
 
-__version__ = "0.1.0"
