@@ -257,7 +257,9 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
 
     def finish(name, program, rows, pair_flops, example_flops, example_bytes, transient, pair_tmp):
         def peak(b):
-            held = 2 * b * example_bytes + b * transient + b * b * (pair_tmp + tile_elems) * isz
+            # K(X, X) in one tile holds one block of factors (its row is its column).
+            sets = 1 if sym and b >= n1 else 2
+            held = sets * b * example_bytes + b * transient + b * b * (pair_tmp + tile_elems) * isz
             return held + 2 * b * b * tile_elems * isz
 
         block = _blocks(n1, n2, peak, budget)
