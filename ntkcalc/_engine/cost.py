@@ -55,15 +55,24 @@ def dense_pair_flops(a: int, p: int, outputs: str) -> float:
     return 2.0 * p * (a * a if outputs == "full" else a)
 
 
+# With several positions (T > 1) the factored contraction is a batched einsum over example pairs,
+# which XLA on CPU runs far below matmul speed: measured ≈ 8× slower per FLOP than one large GEMM
+# (conv layers of the benchmark CNN, docs/performance.md). Costs of such contractions are scaled
+# by this factor so the planner compares time, not FLOPs.
+BATCHED_CONTRACTION_PENALTY = 8.0
+
+
 def factored_pair_flops(a: int, b: int, t: int, c: int, r: int, outputs: str) -> float:
     """Contraction FLOPs per pair of examples for one factored leaf: the input Gram, then the
     cheaper of (cotangent Gram, then combine) and (input Gram against one cotangent, then the
-    other), as the einsum path optimiser will choose."""
+    other), as the einsum path optimiser will choose; scaled by `BATCHED_CONTRACTION_PENALTY`
+    when there are several positions."""
     mode = a * a if outputs == "full" else a
     hh = 2.0 * b * t * t * c
     gram_first = 2.0 * b * t * t * r * mode + b * t * t * mode
     one_side_first = 2.0 * b * t * t * a * r + 2.0 * b * t * r * mode
-    return hh + min(gram_first, one_side_first)
+    flops = hh + min(gram_first, one_side_first)
+    return flops * (BATCHED_CONTRACTION_PENALTY if t > 1 else 1.0)
 
 
 def factored_pair_elements(a: int, b: int, t: int, outputs: str) -> float:

@@ -378,7 +378,10 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
         if choice != "factored":
             folds[k] = None
         kinds[k] = choice
-        rows[k] = LeafCost(name, shape, analysis.rule(k), choice, pairs * pf, eb)
+        note = ""
+        if choice == "factored" and st.factored_sizes(uses[0])[1] > 1:
+            note = f"FLOPs ×{C.BATCHED_CONTRACTION_PENALTY:g}: batched-einsum speed on CPU"
+        rows[k] = LeafCost(name, shape, analysis.rule(k), choice, pairs * pf, eb, note)
     folded = {j for j in folds if j is not None}
     for j in folded:
         kinds[j] = "folded"
