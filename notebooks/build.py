@@ -46,8 +46,8 @@ LAZY = [
     from flax import nnx
 
     import ntkcalc
-    from ntkcalc._analysis import alignment, forecast, kernel_distance
-    from ntkcalc._workflows.data import pump_readings
+    from ntkcalc import alignment, forecast, kernel_distance
+    from ntkcalc import pump_readings
 
     train, test = pump_readings(120 if SMALL else 400, 60 if SMALL else 200, seed=1)
     x, y = train.x, train.one_hot
@@ -170,8 +170,8 @@ CHECKPOINT = [
     import orbax.checkpoint as ocp
 
     import ntkcalc
-    from ntkcalc._analysis import spectrum
-    from ntkcalc._workflows.data import pump_readings
+    from ntkcalc import spectrum
+    from ntkcalc import pump_readings
 
     n = 300 if SMALL else 3000
     train, _ = pump_readings(n, 1, seed=2)
@@ -282,8 +282,8 @@ PREDICT = [
     import optax
 
     import ntkcalc
-    from ntkcalc._analysis import forecast, ridge_fit, risk
-    from ntkcalc._workflows.data import pump_readings
+    from ntkcalc import forecast, ridge_fit, risk
+    from ntkcalc import pump_readings
 
     train, test = pump_readings(150 if SMALL else 500, 100 if SMALL else 400, seed=3)
     x, y, xt, yt = train.x, train.one_hot, test.x, test.one_hot

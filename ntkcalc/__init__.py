@@ -49,6 +49,8 @@ from ._kernel import ntk as ntk
 from ._kernel import ntk_by_layer as ntk_by_layer
 from ._tiles.view import RunInfo as RunInfo
 from ._tiles.view import StoredKernel as StoredKernel
+from ._workflows.data import PumpReadings as PumpReadings
+from ._workflows.data import pump_readings as pump_readings
 from ._workflows.demo import DemoResult as DemoResult
 from ._workflows.demo import run_demo as run_demo
 from ._workflows.drift import DEFAULT_THRESHOLD as DEFAULT_THRESHOLD
