@@ -23,7 +23,8 @@ def test_feature_shapes_differ():
 
 
 def test_inputs_do_not_fit_model():
-    with pytest.raises(ValueError, match=r"`x1` with feature shape \(7,\) .* does not fit the model"):
+    match = r"`x1` with feature shape \(7,\) .* does not fit the model"
+    with pytest.raises(ValueError, match=match):
         ntkcalc.ntk(_net(), np.ones((3, 7)))
 
 
@@ -47,7 +48,8 @@ def test_nan_in_inputs_reports_index():
 def test_inf_in_params_reports_leaf():
     net = _net()
     bad = net.replace(params={"w": net.params["w"].at[1, 0].set(jnp.inf), "b": net.params["b"]})
-    with pytest.raises(ValueError, match=r"leaf 'w' holds a non-finite value inf at index \(1, 0\)"):
+    match = r"leaf 'w' holds a non-finite value inf at index \(1, 0\)"
+    with pytest.raises(ValueError, match=match):
         ntkcalc.ntk(bad, X)
 
 

@@ -28,7 +28,6 @@ import math
 
 import jax
 import jax.numpy as jnp
-import numpy as np
 from jax import lax
 from jax.extend import core as jcore
 
@@ -372,7 +371,3 @@ def factorable(uses: tuple[Use, ...]) -> bool:
 def trace_example(fn, args_spec):
     """ClosedJaxpr of ``fn`` at abstract arguments (no compute)."""
     return jax.make_jaxpr(fn)(*args_spec)
-
-
-def leaf_bytes(x) -> int:
-    return int(np.prod(x.shape, dtype=np.int64)) * np.dtype(x.dtype).itemsize
