@@ -52,9 +52,9 @@ def build_parser() -> argparse.ArgumentParser:
     demo = _subparser(sub, "demo",
                       help="Train a small network, analyse its kernel, write a report.",
                       example="ntkcalc demo out/ --scale small")
-    demo.add_argument("out_dir", nargs="?", default="ntkcalc-demo",
-                      help="directory for the run, its checkpoints and the report "
-                      "(default: ./ntkcalc-demo)")
+    demo.add_argument("out_dir", nargs="?", default=None,
+                      help="a new or empty directory for the run, its checkpoints and the report "
+                      "(default: a new ./ntkcalc-demo-YYYYMMDD-HHMMSS)")
     demo.add_argument("--scale", choices=("full", "small"), default="full",
                       help="'small' runs in seconds (default: full)")
     demo.add_argument("--quiet", action="store_true", help="no progress messages")
@@ -197,7 +197,8 @@ def _optional(command: str, module: str, name: str):
 
 def _demo(args) -> int:
     run_demo = _optional("demo", "ntkcalc._workflows.demo", "run_demo")
-    result = run_demo(args.out_dir, scale=args.scale, progress=not args.quiet)
+    out_dir = args.out_dir or time.strftime("ntkcalc-demo-%Y%m%d-%H%M%S")
+    result = run_demo(out_dir, scale=args.scale, progress=not args.quiet)
     print(f"report: {result.report_html}")
     for line in result.summary:
         print(line)

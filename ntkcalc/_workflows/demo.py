@@ -259,9 +259,6 @@ def run_demo(out_dir, *, scale: Scale = "full", progress: bool = True) -> DemoRe
         report = json.load(fh)
     seconds = time.perf_counter() - start
     summary = tuple(report["summary"])
-    if progress:
-        print(f"report: {html}  ({seconds:.0f} s)")
-        print("\n".join(summary))
     fc, dr, rk = results["forecast"], results["drift"], results["risk"]
     return DemoResult(
         out_dir=path, report_html=html, report_json=report_json, summary=summary,
