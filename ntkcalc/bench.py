@@ -102,7 +102,6 @@ def _child(spec: dict) -> dict:
     import resource
 
     import jax
-    import numpy as np
 
     import ntkcalc
     from ntkcalc._engine.cost import machine_rate
@@ -125,7 +124,6 @@ def _child(spec: dict) -> dict:
         out["matmul_flops_per_s"] = machine_rate("float32")
     out.update(first=first, seconds=second,
                peak_rss_gb=resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6)
-    del np
     return out
 
 

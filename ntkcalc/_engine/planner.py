@@ -316,7 +316,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
         groups = len(sel.group_names)
         jvp_pair = a * 3.0 * fwd * groups
         finish("jvp", prog, rows, jvp_pair, a * 3.0 * fwd, x_bytes,
-               chunk * (p_total * isz * 3 + acts * isz * 2) / 1, 0.0)
+               chunk * (p_total * isz * 3 + acts * isz * 2), 0.0)
 
     feasible = {m: v for m, v in candidates.items() if v[2] is not None}
     if not feasible or (method != "auto" and method not in feasible):
@@ -344,13 +344,10 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
     kinds: list[str] = [""] * n
     rows: list[LeafCost | None] = [None] * n
     folds: list[int | None] = [None] * n
-    extra_c = [0] * n
     for k in range(n):
         j = analysis.bias_of[k] if analysis.bias_of else None
         if j is not None and sel.groups[j] == sel.groups[k]:
             folds[k] = j
-            extra_c[k] = 1
-    folded = {j for j in folds if j is not None}
     for k, (name, shape, p) in enumerate(zip(names, shapes, sizes, strict=True)):
         uses = analysis.uses[k]
         dense_pf = C.dense_pair_flops(a, p, outputs)
@@ -367,14 +364,13 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
         choice, pf, eb = "dense", dense_pf, a * p * isz
         if st.factorable(uses):
             bsz, t, c, r = st.factored_sizes(uses[0])
-            fpf = C.factored_pair_flops(a, bsz, t, c + extra_c[k], r, outputs)
-            if folds[k] is not None:  # the folded bias would cost a dense contraction
-                fpf -= C.dense_pair_flops(a, sizes[folds[k]], outputs)
-            if fpf < dense_pf:  # the factored form only where it is cheaper per pair
-                choice, pf = "factored", fpf + (
-                    C.dense_pair_flops(a, sizes[folds[k]], outputs) if folds[k] is not None
-                    else 0.0)
-                eb = (bsz * t * (c + extra_c[k]) + a * bsz * t * r) * isz
+            extra = 1 if folds[k] is not None else 0  # a folded bias is one more input
+            fpf = C.factored_pair_flops(a, bsz, t, c + extra, r, outputs)
+            # Against the dense form of the weight and, when folded, of its bias too.
+            alone = dense_pf + (C.dense_pair_flops(a, sizes[folds[k]], outputs) if extra else 0)
+            if fpf < alone:
+                choice, pf = "factored", fpf
+                eb = (bsz * t * (c + extra) + a * bsz * t * r) * isz
         if choice != "factored":
             folds[k] = None
         kinds[k] = choice
