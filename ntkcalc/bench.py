@@ -220,19 +220,25 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     parser = argparse.ArgumentParser(
         prog="ntkcalc bench", description=__doc__.split("\n\n")[0],
-        epilog="example:\n  ntkcalc bench --quick\n  ntkcalc bench --scale --json out.json",
+        epilog="example:\n  ntkcalc bench --quick\n  ntkcalc bench --model cnn\n"
+               "  ntkcalc bench --scale --json out.json",
         formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--quick", action="store_true", help="two small rows only")
     parser.add_argument("--scale", action="store_true",
                         help="also run the dataset-scale rows (memory budget, store, devices)")
+    parser.add_argument("--model", action="append", choices=sorted(MODELS),
+                        help="only the rows of this model (repeatable)")
     parser.add_argument("--json", help="write every row to this JSON file")
     args = parser.parse_args(argv)
     import platform
 
     print(f"ntkcalc bench on {platform.machine()} {os.cpu_count()} CPU cores, "
           f"python {platform.python_version()}")
-    table = run(QUICK if args.quick else ROWS)
-    if not args.quick:
+    rows = QUICK if args.quick else ROWS
+    if args.model:
+        rows = [r for r in rows if r[0] in args.model]
+    table = run(rows)
+    if not args.quick and not args.model:
         table.append(jacobian_memory_row())
     if args.scale:
         from ._tiles import bench_scale

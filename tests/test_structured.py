@@ -71,6 +71,23 @@ def _transposed_net():
     return ntkcalc.Net(transposed_apply, params)
 
 
+def lookup_apply(p, tokens):
+    """Embedding lookups three ways: jnp.take with negative indices (wrapped), a clipped lookup
+    with out-of-range indices, and a table tied to the output projection (lookup + matmul)."""
+    e = jnp.take(p["table"], tokens, axis=0)  # (batch, T, D)
+    c = jnp.take(p["clipped"], tokens + 3, axis=0, mode="clip")
+    h = jnp.tanh(e + c).mean(axis=1)
+    logits = h @ p["tied"].T  # (batch, V): the tied table as the output layer
+    return logits + jnp.tanh(jnp.take(p["tied"], tokens[:, 0], axis=0)).sum(-1, keepdims=True)
+
+
+def _lookup_net():
+    r = np.random.default_rng(11)
+    params = {"table": r.normal(size=(7, 3)), "clipped": r.normal(size=(7, 3)),
+              "tied": r.normal(size=(7, 3))}
+    return ntkcalc.Net(lookup_apply, params)
+
+
 def _linen(module, x):
     return ntkcalc.Net.from_linen(module, f64(module.init(jax.random.key(0), x[:1])))
 
@@ -85,6 +102,8 @@ def models():
         "convs": (_linen(Convs(), x_img), x_img),
         "encoder": (_linen(Encoder(), tokens), tokens),
         "transposed": (_transposed_net(), x_vec),
+        # Tokens in [-7, 7): negative ones wrap; +3 pushes some past the clipped table's end.
+        "lookup": (_lookup_net(), r.integers(-7, 7, size=(4, 5)).astype(np.int32)),
     }
 
 
@@ -95,7 +114,7 @@ EXPECTED = {
         "Dense_0.kernel": "dense", "Dense_0.bias": "bias",
     },
     "encoder": {
-        "Embed_0.embedding": "fallback",
+        "Embed_0.embedding": "embed",
         "LayerNorm_0.scale": "scale", "LayerNorm_0.bias": "bias",
         "LayerNorm_1.scale": "scale", "LayerNorm_1.bias": "bias",
         **{f"attn.{n}.kernel": "dense" for n in ("query", "key", "value", "out")},
@@ -108,6 +127,9 @@ EXPECTED = {
         "w_t": "dense", "gain": "scale", "log_scale": "fallback", "w_rec": "fallback",
         "v": "dense",
     },
+    # A table used by a lookup and a matmul has two uses: structured (dense from the consumers),
+    # not factored; the lookup inside tanh is still a rule (tanh consumes the gathered rows).
+    "lookup": {"table": "embed", "clipped": "embed", "tied": "dense+embed×2"},
 }
 
 
@@ -131,10 +153,11 @@ def test_structured_matches_dense_reference(models, name, outputs):
 
 def test_zoo_rules():
     # Shared and reused weights: a weight used twice is still structured (dense×2), an
-    # embedding lookup (gather) falls back; dense biases fold into their layer's factors.
+    # embedding lookup (gather of rows) has its own rule; dense biases fold into their layer's
+    # factors.
     expected = {
         "shared-weight": {"w": "dense×2", "b": "bias", "v": "dense"},
-        "tokens": {"Embed_0.embedding": "fallback", "Dense_0.kernel": "dense",
+        "tokens": {"Embed_0.embedding": "embed", "Dense_0.kernel": "dense",
                    "Dense_0.bias": "bias"},
     }
     for case in ZOO:
@@ -153,3 +176,28 @@ def test_plan_prints_a_table(models):
     for word in ("parameter", "rule", "FLOPs", "bytes/example", "log_scale", "fallback",
                  "GFLOP/s", "estimates"):
         assert word in text
+
+
+@pytest.mark.parametrize("outputs", ["full", "trace"])
+@pytest.mark.parametrize("representation", ["factored", "dense"])
+def test_embedding_both_representations(models, outputs, representation):
+    # The lookup's factors (row indices, cotangents) and its dense derivative (one-hot rows
+    # times cotangents) must both give the reference kernel, whichever the planner would pick.
+    import dataclasses
+
+    from ntkcalc._engine.planner import plan_request, prepare
+    from ntkcalc._engine.program import compiled
+
+    net, x = models["encoder"]
+    req = prepare(net, x, outputs=outputs, method="structured")
+    program = plan_request(req, outputs=outputs, memory=None, method="structured").program
+    names = [req.selection.names[i] for i in req.selection.indices]
+    k = names.index("Embed_0.embedding")
+    kinds = list(program.kinds)
+    kinds[k] = representation
+    program = dataclasses.replace(program, kinds=tuple(kinds))
+    factors, tile = compiled(program)
+    fa = factors(req.diff, req.other, req.state, jnp.asarray(req.x1))
+    assert isinstance(fa[k], tuple) == (representation == "factored")
+    got = tile(req.diff, req.other, req.state, fa, fa)[0]
+    assert_close(got, reduce_mode(reference_full(net, x), outputs))

@@ -3,8 +3,9 @@
 Counts follow the cost analysis of Novak, Sohl-Dickstein & Schoenholz, "Fast Finite Width Neural
 Tangent Kernel", ICML 2022, arXiv:2206.08720: a VJP or JVP costs about two forward passes; a
 Jacobian contraction costs 2·A·P per pair of examples (A² for the full O×O kernel); a structured
-dense layer costs 2·B·T²·(C + A·R) per pair. Estimates are for choosing, not for promising: the
-plan prints them next to the measured machine rate they are converted with.
+dense layer costs 2·B·T²·(C + A·R) per pair. Time is FLOPs over a measured matmul rate plus bytes
+moved (factors written and read, Gram temporaries) over a measured streaming rate. Estimates are
+for choosing, not for promising: the plan prints them next to the rates they are converted with.
 """
 
 from __future__ import annotations
@@ -55,24 +56,14 @@ def dense_pair_flops(a: int, p: int, outputs: str) -> float:
     return 2.0 * p * (a * a if outputs == "full" else a)
 
 
-# With several positions (T > 1) the factored contraction is a batched einsum over example pairs,
-# which XLA on CPU runs far below matmul speed: measured ≈ 8× slower per FLOP than one large GEMM
-# (conv layers of the benchmark CNN, docs/performance.md). Costs of such contractions are scaled
-# by this factor so the planner compares time, not FLOPs.
-BATCHED_CONTRACTION_PENALTY = 8.0
-
-
 def factored_pair_flops(a: int, b: int, t: int, c: int, r: int, outputs: str) -> float:
-    """Contraction FLOPs per pair of examples for one factored leaf: the input Gram, then the
-    cheaper of (cotangent Gram, then combine) and (input Gram against one cotangent, then the
-    other), as the einsum path optimiser will choose; scaled by `BATCHED_CONTRACTION_PENALTY`
-    when there are several positions."""
-    mode = a * a if outputs == "full" else a
-    hh = 2.0 * b * t * t * c
-    gram_first = 2.0 * b * t * t * r * mode + b * t * t * mode
-    one_side_first = 2.0 * b * t * t * a * r + 2.0 * b * t * r * mode
-    flops = hh + min(gram_first, one_side_first)
-    return flops * (BATCHED_CONTRACTION_PENALTY if t > 1 else 1.0)
+    """Contraction FLOPs per pair of examples for one factored leaf, in the order `contract`
+    runs it: the input Gram (2·B·T²·C; pass c=0 for looked-up rows, whose Gram is a
+    comparison), the cotangent Gram (2·B·T²·R·A, A² for the full kernel), and their product
+    summed over positions. The memory traffic of the Gram temporaries is priced separately
+    (`factored_pair_elements`, `stream_rate`)."""
+    directions = a * a if outputs == "full" else a
+    return 2.0 * b * t * t * (c + r * directions) + factored_pair_elements(a, b, t, outputs)
 
 
 def factored_pair_elements(a: int, b: int, t: int, outputs: str) -> float:
@@ -81,19 +72,34 @@ def factored_pair_elements(a: int, b: int, t: int, outputs: str) -> float:
     return b * t * t * (1 + mode)
 
 
+def _best_seconds(f, x, repeats: int) -> float:
+    """Fastest of ``repeats`` timed calls of the jitted ``f(x)``, after one warm-up call."""
+    f = jax.jit(f)
+    f(x).block_until_ready()
+    best = math.inf
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        f(x).block_until_ready()
+        best = min(best, time.perf_counter() - t0)
+    return max(best, 1e-9)
+
+
 @functools.lru_cache(maxsize=4)
 def machine_rate(dtype_name: str = "float32") -> float:
     """Measured FLOP/s of a jitted 512×512 matmul on the default device (cached per process)."""
     n = 512
     x = jnp.ones((n, n), dtype=dtype_name)
-    f = jax.jit(lambda a: jnp.dot(a, a, precision="highest"))
-    f(x).block_until_ready()
-    best = math.inf
-    for _ in range(5):
-        t0 = time.perf_counter()
-        f(x).block_until_ready()
-        best = min(best, time.perf_counter() - t0)
-    return 2.0 * n**3 / max(best, 1e-9)
+    return 2.0 * n**3 / _best_seconds(lambda a: jnp.dot(a, a, precision="highest"), x, 5)
+
+
+@functools.lru_cache(maxsize=4)
+def stream_rate(dtype_name: str = "float32") -> float:
+    """Measured bytes/s (read + written) of a jitted elementwise op on 2²⁴ elements, larger than
+    caches: the speed of memory-bound work (writing factors, re-laying them out, streaming Gram
+    temporaries), cached per process."""
+    n = 1 << 24
+    x = jnp.arange(n, dtype=dtype_name)
+    return 2.0 * n * x.dtype.itemsize / _best_seconds(lambda u: u * 2, x, 3)
 
 
 def available_memory() -> int:

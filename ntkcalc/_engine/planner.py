@@ -56,6 +56,7 @@ class Plan:
         flops, peak_bytes, seconds: estimated totals (seconds from `machine_rate`).
         estimates: {method: estimated seconds} for every method that was costed.
         memory: the byte budget the block size was chosen for.
+        rate, stream: the measured matmul FLOP/s and streaming bytes/s the time is estimated at.
         program: the compiled-computation description the tile layer runs.
     """
 
@@ -75,6 +76,7 @@ class Plan:
     estimates: dict
     memory: int
     rate: float
+    stream: float
     program: Program = dataclasses.field(repr=False)
     group_names: tuple[str, ...] = ("all",)
 
@@ -106,7 +108,8 @@ class Plan:
             )
         lines.append(
             f"  total {C.format_flops(self.flops)}, peak ≈ {C.format_bytes(self.peak_bytes)}, "
-            f"≈ {self.seconds:.3g} s at {self.rate / 1e9:.3g} GFLOP/s (measured matmul rate)"
+            f"≈ {self.seconds:.3g} s at {self.rate / 1e9:.3g} GFLOP/s and "
+            f"{self.stream / 1e9:.3g} GB/s (measured matmul and streaming rates)"
         )
         alts = ", ".join(f"{m} ≈ {s:.3g} s" for m, s in sorted(self.estimates.items(),
                                                                 key=lambda kv: kv[1]))
@@ -251,6 +254,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
     pairs = n1 * (n1 + 1) / 2 if sym else n1 * n2
     tile_elems = math.prod(tile_shape(outputs, 1, 1, o))
     rate = C.machine_rate(req.dtype.name)
+    stream = C.stream_rate(req.dtype.name)
     x_bytes = int(np.prod(req.x1.shape[1:], dtype=np.int64)) * req.x1.dtype.itemsize
 
     candidates = {}
@@ -272,7 +276,12 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
         evaluations = (n1 + (0 if sym else n2)) if cache else (
             n1 + (nb_rows * n1 / 2 if sym else nb_rows * n2))
         flops = pairs * pair_flops + evaluations * example_flops
-        seconds = flops / rate
+        # Memory traffic: factors and residuals written once per evaluation and read by every
+        # tile that uses them; Gram temporaries written and read once per pair.
+        tiles = math.ceil(n1 / block) * (math.ceil(n2 / block) if not sym else 1)
+        moved = (evaluations * (example_bytes + transient)
+                 + tiles * 2 * block * example_bytes + 2 * pairs * pair_tmp * isz)
+        seconds = flops / rate + moved / stream
         candidates[name] = (seconds, peak(block) + (total_factor_bytes if cache else 0), block,
                             rows, program, cache, flops)
 
@@ -291,8 +300,12 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
 
     # Structured derivatives: per leaf, factored or dense from its consumer, else fallback.
     if method in ("auto", "structured"):
+        # Each example's dense derivative is written once and read by every tile it is in:
+        # per pair, about 2/(block side) reads plus the write shared by the pairs of its row.
+        side = min(n1, n1 if sym else n2, 256)
+        reads_per_pair = 2.0 / side + (n1 + (0 if sym else n2)) / pairs
         rows, kinds, folds = _structured_rows(analysis, sel, names, shapes, sizes, a, isz,
-                                              outputs, pairs)
+                                              outputs, pairs, rate / stream, reads_per_pair)
         pair_flops = sum(r.flops for r in rows) / pairs
         example_bytes = sum(r.bytes_per_example for r in rows)
         example_flops = backprop + sum(
@@ -330,7 +343,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
     seconds, peak, block, rows, program, cache, flops = feasible[chosen]
     estimates = {m: v[0] for m, v in candidates.items()}
     return Plan(chosen, outputs, n1, n2, sym, o, req.dtype, block, cache, tuple(rows), flops,
-                peak, seconds, estimates, budget, rate, program, sel.group_names)
+                peak, seconds, estimates, budget, rate, stream, program, sel.group_names)
 
 
 def _factored_tmp(use: st.Use, a: int, outputs: str) -> float:
@@ -338,8 +351,13 @@ def _factored_tmp(use: st.Use, a: int, outputs: str) -> float:
     return C.factored_pair_elements(a, bsz, t, outputs)
 
 
-def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs):
-    """Per leaf: the plan row, the representation, and the bias folded into it (if any)."""
+def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs,
+                     flops_per_byte: float, dense_reads: float):
+    """Per leaf: the plan row, the representation, and the bias folded into it (if any).
+
+    A leaf is factored when that is cheaper than its dense form, counting the memory traffic of
+    each at ``flops_per_byte`` (matmul rate / streaming rate): a dense derivative is moved about
+    ``dense_reads`` times per pair; the factored Gram temporaries are written and read once."""
     n = len(names)
     kinds: list[str] = [""] * n
     rows: list[LeafCost | None] = [None] * n
@@ -365,18 +383,19 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
         if st.factorable(uses):
             bsz, t, c, r = st.factored_sizes(uses[0])
             extra = 1 if folds[k] is not None else 0  # a folded bias is one more input
-            fpf = C.factored_pair_flops(a, bsz, t, c + extra, r, outputs)
+            embed = uses[0].rule == "embed"  # looked-up rows: the input Gram is a comparison
+            fpf = C.factored_pair_flops(a, bsz, t, 0 if embed else c + extra, r, outputs)
             # Against the dense form of the weight and, when folded, of its bias too.
             alone = dense_pf + (C.dense_pair_flops(a, sizes[folds[k]], outputs) if extra else 0)
-            if fpf < alone:
+            traffic = 2 * C.factored_pair_elements(a, bsz, t, outputs) * isz * flops_per_byte
+            dense_bytes = a * (p + (sizes[folds[k]] if extra else 0)) * isz
+            if fpf + traffic < alone + dense_bytes * dense_reads * flops_per_byte:
                 choice, pf = "factored", fpf
-                eb = (bsz * t * (c + extra) + a * bsz * t * r) * isz
+                eb = (bsz * t * (1 if embed else c + extra) + a * bsz * t * r) * isz
         if choice != "factored":
             folds[k] = None
         kinds[k] = choice
         note = ""
-        if choice == "factored" and st.factored_sizes(uses[0])[1] > 1:
-            note = f"FLOPs ×{C.BATCHED_CONTRACTION_PENALTY:g}: batched-einsum speed on CPU"
         rows[k] = LeafCost(name, shape, analysis.rule(k), choice, pairs * pf, eb, note)
     folded = {j for j in folds if j is not None}
     for j in folded:

@@ -113,13 +113,17 @@ class Program:
                 reps.append(next(fb_iter))
             elif st.factorable(an.uses[k]):
                 (u,) = an.uses[k]
-                fac = st.dot_factors if u.rule == "dense" else st.conv_factors
-                h, g = fac(u, caps[u.path], cots[u.path])
+                h, g = st.factors_of(u, caps[u.path], cots[u.path])
                 if self.folds and self.folds[k] is not None:
                     h = jnp.concatenate([h, jnp.ones(h.shape[:-1] + (1,), h.dtype)], axis=-1)
+                if kind == "factored":
+                    reps.append((h, g))
+                    continue
+                if u.rule == "embed":  # looked-up rows as one-hot inputs (-1: a zero row)
+                    h = jax.nn.one_hot(h, u.in_avals[0].shape[0], dtype=g.dtype)
                 # Dense from the factors is one batched matmul (for a conv, over image patches),
                 # and its entries are a permutation of the leaf's: the kernel is unchanged.
-                reps.append((h, g) if kind == "factored" else dense_from_factored(h, g))
+                reps.append(dense_from_factored(h, g))
             else:
                 reps.append(
                     st.local_vjp(an.uses[k], diff[k], [caps[u.path] for u in an.uses[k]],

@@ -12,8 +12,10 @@ at once, and the leaf's derivative follows from the consumer alone: a VJP of
 kernel contribution costs activations² rather than parameters (see `contract`).
 
 Rules, per leaf: ``"dense"`` (dot_general), ``"conv"`` (conv_general_dilated, any strides, padding,
-dilation, feature groups), ``"scale"`` (elementwise mul), ``"bias"`` (add), and ``"fallback"``
-(anything else: gather, nonlinear use, control flow, a leaf used as both operands): the Jacobian
+dilation, feature groups), ``"embed"`` (a gather of whole rows, y[t] = E[idx_t]: the lookup is
+one_hot(idx) @ E, so it factors like a dense layer whose input Gram is [idx_t = idx'_s]),
+``"scale"`` (elementwise mul), ``"bias"`` (add), and ``"fallback"`` (anything else: other gathers,
+nonlinear use, control flow, a leaf used as both operands): the Jacobian
 contraction for that leaf only, from the same VJP. A leaf with several uses is structured when
 every use has a rule; its derivative is the sum over uses.
 
@@ -39,7 +41,9 @@ PASS_THROUGH = frozenset(
 )
 # Pass-throughs that only permute or relabel entries: inner products survive them.
 PERMUTING = PASS_THROUGH - {"broadcast_in_dim"}
-RULES = {"dot_general": "dense", "conv_general_dilated": "conv", "mul": "scale", "add": "bias"}
+RULES = {"dot_general": "dense", "conv_general_dilated": "conv", "mul": "scale", "add": "bias",
+         "gather": "embed"}
+FACTORABLE = frozenset({"dense", "conv", "embed"})
 CALLS = frozenset({"jit", "pjit", "closed_call"})
 
 
@@ -89,7 +93,23 @@ def _has_rule(eqn, operand: int) -> bool:
     name = eqn.primitive.name
     if name == "conv_general_dilated":
         return operand == 1 and eqn.params["batch_group_count"] == 1
+    if name == "gather":
+        return operand == 0 and _row_gather(eqn.params, eqn.invars[0].aval, eqn.invars[1].aval)
     return name in RULES
+
+
+def _row_gather(params, operand, indices) -> bool:
+    """Whether a gather picks whole rows ``operand[idx]`` (an embedding lookup, ``jnp.take``)."""
+    dn = params["dimension_numbers"]
+    rest = tuple(operand.shape[1:])
+    out_nd = indices.ndim - 1 + len(rest)
+    return (
+        indices.ndim >= 1 and indices.shape[-1] == 1
+        and tuple(dn.collapsed_slice_dims) == (0,) and tuple(dn.start_index_map) == (0,)
+        and tuple(dn.operand_batching_dims) == () and tuple(dn.start_indices_batching_dims) == ()
+        and tuple(params["slice_sizes"]) == (1, *rest)
+        and tuple(dn.offset_dims) == tuple(range(indices.ndim - 1, out_nd))
+    )
 
 
 def _sub_jaxpr(eqn):
@@ -341,8 +361,34 @@ def conv_factors(use: Use, operands, cot):
     return h_m, g_m
 
 
+def embed_factors(use: Use, operands, cot):
+    """(idx (1, T) int32, g (A, 1, T, R)) of a row gather: T looked-up positions, R = row size.
+
+    ``idx`` is the row each position reads, after the gather's own index handling (clipped, or
+    -1 for an out-of-range index under fill mode, whose output does not depend on the rows).
+    """
+    table, indices = operands
+    v = table.shape[0]
+    idx = indices[..., 0].reshape(1, -1).astype(jnp.int32)
+    if use.params["mode"] == lax.GatherScatterMode.FILL_OR_DROP:
+        idx = jnp.where((idx >= 0) & (idx < v), idx, -1)
+    else:
+        idx = jnp.clip(idx, 0, v - 1)
+    a = cot.shape[0]
+    return idx, cot.reshape(a, 1, idx.shape[1], -1)
+
+
+def factors_of(use: Use, operands, cot):
+    """(h, g) of a factorable use: `dot_factors`, `conv_factors` or `embed_factors`."""
+    return {"dense": dot_factors, "conv": conv_factors, "embed": embed_factors}[use.rule](
+        use, operands, cot)
+
+
 def factored_sizes(use: Use) -> tuple[int, int, int, int]:
-    """(B, T, C, R) of a factorable use, from the abstract shapes alone."""
+    """(B, T, C, R) of a factorable use, from the abstract shapes alone (an embedding: C = rows)."""
+    if use.rule == "embed":
+        table, indices = use.in_avals
+        return 1, math.prod(indices.shape[:-1]), table.shape[0], math.prod(table.shape[1:])
     if use.rule == "dense":
         (lc, rc), (lb, rb) = use.params["dimension_numbers"]
         p_is_rhs = use.operand == 1
@@ -365,7 +411,7 @@ def factored_sizes(use: Use) -> tuple[int, int, int, int]:
 
 
 def factorable(uses: tuple[Use, ...]) -> bool:
-    return len(uses) == 1 and uses[0].rule in ("dense", "conv") and uses[0].permuting
+    return len(uses) == 1 and uses[0].rule in FACTORABLE and uses[0].permuting
 
 
 def trace_example(fn, args_spec):
