@@ -178,26 +178,52 @@ def test_plan_prints_a_table(models):
         assert word in text
 
 
-@pytest.mark.parametrize("outputs", ["full", "trace"])
-@pytest.mark.parametrize("representation", ["factored", "dense"])
-def test_embedding_both_representations(models, outputs, representation):
-    # The lookup's factors (row indices, cotangents) and its dense derivative (one-hot rows
-    # times cotangents) must both give the reference kernel, whichever the planner would pick.
+def _forced(net, x1, x2, outputs, representation):
+    """The kernel with every factorable leaf forced to ``representation`` (internal check:
+    whichever form the planner picks must give the same kernel)."""
     import dataclasses
 
+    from ntkcalc._engine import structured as st
     from ntkcalc._engine.planner import plan_request, prepare
     from ntkcalc._engine.program import compiled
 
-    net, x = models["encoder"]
-    req = prepare(net, x, outputs=outputs, method="structured")
+    req = prepare(net, x1, x2, outputs=outputs, method="structured")
     program = plan_request(req, outputs=outputs, memory=None, method="structured").program
-    names = [req.selection.names[i] for i in req.selection.indices]
-    k = names.index("Embed_0.embedding")
-    kinds = list(program.kinds)
-    kinds[k] = representation
-    program = dataclasses.replace(program, kinds=tuple(kinds))
+    kinds = tuple(
+        representation if kind in ("dense", "factored", "streamed")
+        and st.factorable(program.analysis.uses[k]) else kind
+        for k, kind in enumerate(program.kinds))
+    if representation == "dense":  # a dense leaf carries no folded bias
+        kinds = tuple("dense" if kind == "folded" else kind for kind in kinds)
+        program = dataclasses.replace(program, folds=(None,) * len(kinds))
+    program = dataclasses.replace(program, kinds=kinds)
     factors, tile = compiled(program)
     fa = factors(req.diff, req.other, req.state, jnp.asarray(req.x1))
-    assert isinstance(fa[k], tuple) == (representation == "factored")
-    got = tile(req.diff, req.other, req.state, fa, fa)[0]
+    if x2 is None:
+        return tile(req.diff, req.other, req.state, fa, fa, same=True)[0], fa, kinds
+    fb = factors(req.diff, req.other, req.state, jnp.asarray(req.x2))
+    return tile(req.diff, req.other, req.state, fa, fb)[0], fa, kinds
+
+
+@pytest.mark.parametrize("outputs", ["full", "trace", "diagonal"])
+@pytest.mark.parametrize("representation", ["factored", "dense", "streamed"])
+@pytest.mark.parametrize("name", ["convs", "encoder", "lookup"])
+def test_every_representation_matches_reference(models, monkeypatch, name, representation,
+                                                outputs):
+    # Dense derivatives from factors, factored Grams, and dense contractions streamed in chunks
+    # of 5 input features (so that convs, dense layers and one-hot embedding rows all span
+    # several chunks, the last one padded) must all give the jacrev reference, on diagonal
+    # (same block) and off-diagonal tiles.
+    from ntkcalc._engine import contract
+    from ntkcalc._engine.program import compiled
+
+    monkeypatch.setattr(contract, "stream_chunk", lambda *args: 5)
+    compiled.cache_clear()
+    net, x = models[name]
+    got, fa, kinds = _forced(net, x, None, outputs, representation)
+    assert representation in kinds
     assert_close(got, reduce_mode(reference_full(net, x), outputs))
+    half = x.shape[0] // 2
+    got12, _, _ = _forced(net, x[:half], x[half:], outputs, representation)
+    assert_close(got12, reduce_mode(reference_full(net, x[:half], x[half:]), outputs))
+    compiled.cache_clear()

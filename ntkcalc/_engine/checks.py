@@ -99,9 +99,25 @@ def check_pair(x1: np.ndarray, x2: np.ndarray | None) -> None:
         )
 
 
+_OUTPUT_SIZES: dict = {}
+
+
 def output_size(net: Net, params, state, x: np.ndarray, name: str) -> int:
     """Number of outputs O per example, checking that the model accepts ``x`` and keeps the batch
-    on axis 0 (by abstract evaluation at batch sizes 1 and 2: no compute)."""
+    on axis 0 (by abstract evaluation at batch sizes 1 and 2: no compute). Remembered per
+    (model function, parameter and state shapes, input shape): repeated calls skip the tracing."""
+    key = (net.call, jax.tree_util.tree_structure((params, state)),
+           tuple((np.shape(v), str(getattr(v, "dtype", None) or np.asarray(v).dtype))
+                 for v in jax.tree_util.tree_leaves((params, state))),
+           x.shape[1:], str(x.dtype))
+    if key not in _OUTPUT_SIZES:
+        if len(_OUTPUT_SIZES) > 64:
+            _OUTPUT_SIZES.pop(next(iter(_OUTPUT_SIZES)))
+        _OUTPUT_SIZES[key] = _output_size(net, params, state, x, name)
+    return _OUTPUT_SIZES[key]
+
+
+def _output_size(net: Net, params, state, x: np.ndarray, name: str) -> int:
     sizes = {}
     for b in (1, 2):
         spec = jax.ShapeDtypeStruct((b,) + x.shape[1:], x.dtype)

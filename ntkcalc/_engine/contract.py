@@ -19,8 +19,11 @@ keeps a, and only ``full`` forms the O×O pairs. Every contraction is written as
 
 from __future__ import annotations
 
+import jax
 import jax.numpy as jnp
 from jax import lax
+
+from .options import tile_shape
 
 HIGHEST = lax.Precision.HIGHEST
 
@@ -101,19 +104,82 @@ def dense_from_factored(h, g):
     return j.reshape(j.shape[0], -1)
 
 
-def contract(reps1, reps2, kinds, group_index, num_groups: int, outputs: str, tile: tuple):
+# Target bytes of one streamed chunk of dense derivatives: small enough to stay in cache between
+# being formed and being contracted, large enough for an efficient GEMM (measured on the
+# benchmark CNN, docs/performance.md: 4–10 MB chunks ran 1.4× faster than forming the whole
+# derivative in memory).
+STREAM_CHUNK_BYTES = 10 << 20
+
+
+def stream_chunk(b: int, a: int, nb: int, r: int, width: int, itemsize: int) -> int:
+    """Input features per streamed chunk: about `STREAM_CHUNK_BYTES` of (b, A, B, R, chunk),
+    a multiple of 16 (or all of them)."""
+    per_feature = max(1, b * a * nb * r * itemsize)
+    cc = max(16, (STREAM_CHUNK_BYTES // per_feature) // 16 * 16)
+    return int(min(width, cc))
+
+
+def contract_streamed(h1, g1, h2, g2, outputs: str, width: int, same: bool):
+    """Kernel tile of a factorable leaf contracted in dense form, without storing its derivative.
+
+    The dense derivative ``J[i, a, (B, R, C)] = Σ_t h[i,B,t,C] g[i,a,B,t,R]`` is formed chunk by
+    chunk over the input features C (``width`` of them; for looked-up rows h holds indices and
+    each chunk is their one-hot slice) and each chunk is contracted at once, so the full J, often
+    larger than the cache, is never written. ``same``: both sides are the same block (a diagonal
+    tile), so each chunk is formed once.
+    """
+    b1, a, nb, t, r = g1.shape
+    cc = stream_chunk(b1, a, nb, r, width, g1.dtype.itemsize)
+    nc = -(-width // cc)
+    rows = jnp.issubdtype(h1.dtype, jnp.integer)
+
+    def lhs(g):  # (b, B, A·R, T): laid out once, outside the loop over chunks
+        return jnp.transpose(g, (0, 2, 1, 4, 3)).reshape(g.shape[0], nb, a * r, t)
+
+    def split(h):  # (nc, b, B, T, cc) feature chunks, zero-padded to whole chunks
+        h = jnp.pad(h, [(0, 0)] * (h.ndim - 1) + [(0, nc * cc - width)])
+        return jnp.moveaxis(h.reshape(*h.shape[:-1], nc, cc), -2, 0)
+
+    def chunk(h, gl, c):  # (b, A, B·R·cc)
+        hc = jax.nn.one_hot(h - c * cc, cc, dtype=gl.dtype) if rows else h[c]
+        j = jnp.matmul(gl, hc, precision=HIGHEST)  # (b, B, A·R, cc)
+        j = j.reshape(j.shape[0], nb, a, r * cc)
+        return jnp.swapaxes(j, 1, 2).reshape(j.shape[0], a, -1)
+
+    l1 = lhs(g1)
+    l2 = l1 if same else lhs(g2)
+    x1 = h1 if rows else split(h1)
+    x2 = x1 if same else (h2 if rows else split(h2))
+
+    def body(k, c):
+        j1 = chunk(x1, l1, c)
+        j2 = j1 if same else chunk(x2, l2, c)
+        return k + contract_dense(j1, j2, outputs), None
+
+    init = jnp.zeros(tile_shape(outputs, b1, g2.shape[0], a), g1.dtype)
+    k, _ = lax.scan(body, init, jnp.arange(nc))
+    return k
+
+
+def contract(reps1, reps2, kinds, group_index, num_groups: int, outputs: str, tile: tuple, *,
+             widths=(), same: bool = False):
     """Sum the per-leaf contributions into ``(num_groups, *tile)``.
 
     ``reps`` is a list with one entry per differentiated leaf: an array for ``kind == "dense"``,
-    an ``(h, g)`` pair for ``kind == "factored"``, ``None`` for ``"unused"`` and ``"folded"``
-    (a bias whose derivative is carried by its layer's factors).
+    an ``(h, g)`` pair for ``"factored"`` and ``"streamed"`` (contracted in dense form chunk by
+    chunk; ``widths[k]`` is its number of input features), ``None`` for ``"unused"`` and
+    ``"folded"`` (a bias whose derivative is carried by its layer's factors). ``same``: reps1 and
+    reps2 are the same block.
     """
     per_group = [None] * num_groups
-    for r1, r2, kind, grp in zip(reps1, reps2, kinds, group_index, strict=True):
+    for k_leaf, (r1, r2, kind, grp) in enumerate(
+            zip(reps1, reps2, kinds, group_index, strict=True)):
         if kind in ("unused", "folded"):
             continue
         if kind == "dense":
             k = contract_dense(r1, r2, outputs)
+        elif kind == "streamed":
+            k = contract_streamed(r1[0], r1[1], r2[0], r2[1], outputs, widths[k_leaf], same)
         else:
             k = contract_factored(r1[0], r1[1], r2[0], r2[1], outputs)
         per_group[grp] = k if per_group[grp] is None else per_group[grp] + k

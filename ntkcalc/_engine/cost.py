@@ -102,6 +102,19 @@ def stream_rate(dtype_name: str = "float32") -> float:
     return 2.0 * n * x.dtype.itemsize / _best_seconds(lambda u: u * 2, x, 3)
 
 
+@functools.lru_cache(maxsize=32)
+def formation_rate(inner: int, dtype_name: str = "float32") -> float:
+    """Measured FLOP/s of forming dense derivatives from factors: a batched GEMM
+    (32 × (1280 × t) @ (t × 64)) whose inner dimension t is the number of positions. Short inner
+    dimensions run far below `machine_rate`. ``inner`` is rounded up to a power of two (≤ 512)
+    so that few sizes are ever measured; cached per process."""
+    t = min(512, 1 << max(0, math.ceil(math.log2(max(1, inner)))))
+    g = jnp.ones((32, 1280, t), dtype=dtype_name)
+    h = jnp.ones((32, t, 64), dtype=dtype_name)
+    f = lambda u: jnp.matmul(u, h, precision="highest")
+    return 2.0 * 32 * 1280 * t * 64 / _best_seconds(f, g, 3)
+
+
 def available_memory() -> int:
     """Bytes of memory available to this process (host RAM; the first device's where known)."""
     dev = jax.devices()[0]

@@ -303,9 +303,10 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
         # Each example's dense derivative is written once and read by every tile it is in:
         # per pair, about 2/(block side) reads plus the write shared by the pairs of its row.
         side = min(n1, n1 if sym else n2, 256)
-        reads_per_pair = 2.0 / side + (n1 + (0 if sym else n2)) / pairs
         rows, kinds, folds = _structured_rows(analysis, sel, names, shapes, sizes, a, isz,
-                                              outputs, pairs, rate / stream, reads_per_pair)
+                                              outputs, pairs, rate / stream, side,
+                                              (n1 + (0 if sym else n2)) / pairs, rate,
+                                              req.dtype.name)
         pair_flops = sum(r.flops for r in rows) / pairs
         example_bytes = sum(r.bytes_per_example for r in rows)
         example_flops = backprop + sum(
@@ -352,12 +353,20 @@ def _factored_tmp(use: st.Use, a: int, outputs: str) -> float:
 
 
 def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs,
-                     flops_per_byte: float, dense_reads: float):
+                     flops_per_byte: float, side: int, examples_per_pair: float,
+                     rate: float, dtype_name: str):
     """Per leaf: the plan row, the representation, and the bias folded into it (if any).
 
-    A leaf is factored when that is cheaper than its dense form, counting the memory traffic of
-    each at ``flops_per_byte`` (matmul rate / streaming rate): a dense derivative is moved about
-    ``dense_reads`` times per pair; the factored Gram temporaries are written and read once."""
+    Each factorable leaf takes the cheaper of dense and factored, and a dense one is streamed
+    when that is cheaper still; costs per pair of examples in FLOP-equivalents (bytes at
+    ``flops_per_byte`` = matmul rate / streaming rate):
+
+    - ``dense``: its derivative formed once per example, stored, and re-read by every tile it
+      is in (about 2/``side`` reads per pair, ``side`` = examples per tile side);
+    - ``factored``: the Gram contraction of (h, g), streaming its Gram temporaries once;
+    - ``streamed``: (h, g) stored, the dense derivative re-formed chunk by chunk in every tile
+      it is in and contracted while in cache (formation again at 2/``side`` per pair).
+    """
     n = len(names)
     kinds: list[str] = [""] * n
     rows: list[LeafCost | None] = [None] * n
@@ -387,16 +396,30 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
             fpf = C.factored_pair_flops(a, bsz, t, 0 if embed else c + extra, r, outputs)
             # Against the dense form of the weight and, when folded, of its bias too.
             alone = dense_pf + (C.dense_pair_flops(a, sizes[folds[k]], outputs) if extra else 0)
-            traffic = 2 * C.factored_pair_elements(a, bsz, t, outputs) * isz * flops_per_byte
+            # One example's dense derivative from its factors, at the speed of a GEMM whose inner
+            # dimension is the number of positions t (slow for small t), in matmul FLOPs.
+            form = 2.0 * a * bsz * t * (c + extra) * r * rate / C.formation_rate(t, dtype_name)
             dense_bytes = a * (p + (sizes[folds[k]] if extra else 0)) * isz
-            if fpf + traffic < alone + dense_bytes * dense_reads * flops_per_byte:
-                choice, pf = "factored", fpf
+            traffic = 2 * C.factored_pair_elements(a, bsz, t, outputs) * isz * flops_per_byte
+            costs = {
+                "dense": alone + form * examples_per_pair
+                + dense_bytes * (2.0 / side + examples_per_pair) * flops_per_byte,
+                "factored": fpf + traffic,
+                "streamed": alone + form * 2.0 / side,
+            }
+            # Streaming is the dense contraction without storing the derivative: it competes
+            # with the dense form only, never with a cheaper factored contraction (its
+            # memory-bound GEMMs are the least certain part of this model).
+            choice = "factored" if costs["factored"] < costs["dense"] else "dense"
+            if choice == "dense" and costs["streamed"] < costs["dense"]:
+                choice = "streamed"
+            if choice != "dense":
+                pf = fpf if choice == "factored" else costs["streamed"]
                 eb = (bsz * t * (1 if embed else c + extra) + a * bsz * t * r) * isz
-        if choice != "factored":
+        if choice == "dense":
             folds[k] = None
         kinds[k] = choice
-        note = ""
-        rows[k] = LeafCost(name, shape, analysis.rule(k), choice, pairs * pf, eb, note)
+        rows[k] = LeafCost(name, shape, analysis.rule(k), choice, pairs * pf, eb)
     folded = {j for j in folds if j is not None}
     for j in folded:
         kinds[j] = "folded"

@@ -37,7 +37,8 @@ class Program:
         treedef: params tree structure; ``selection`` says which leaves are differentiated.
         outputs: outputs mode; num_outputs: O.
         method: "jacobian", "structured" or "jvp".
-        kinds: per differentiated leaf, "dense", "factored", "folded" (a bias carried by its
+        kinds: per differentiated leaf, "dense", "factored", "streamed" (factors kept, contracted
+            in dense form chunk by chunk inside the tile), "folded" (a bias carried by its
             layer's factors as the constant input 1) or "unused".
         analysis: the structured analysis (method "structured" only).
         jvp_chunk: basis vectors per lax.map step (method "jvp" only).
@@ -116,7 +117,7 @@ class Program:
                 h, g = st.factors_of(u, caps[u.path], cots[u.path])
                 if self.folds and self.folds[k] is not None:
                     h = jnp.concatenate([h, jnp.ones(h.shape[:-1] + (1,), h.dtype)], axis=-1)
-                if kind == "factored":
+                if kind in ("factored", "streamed"):
                     reps.append((h, g))
                     continue
                 if u.rule == "embed":  # looked-up rows as one-hot inputs (-1: a zero row)
@@ -132,14 +133,28 @@ class Program:
         return reps
 
     # -- tiles ----------------------------------------------------------------------------------
-    def tile(self, diff, other, state, fa, fb):
+    def widths(self) -> tuple[int, ...]:
+        """Per leaf, the input features of its factors (a folded bias adds one); 0 if none."""
+        out = []
+        for k, kind in enumerate(self.kinds):
+            if kind not in ("factored", "streamed"):
+                out.append(0)
+                continue
+            fold = 1 if self.folds and self.folds[k] is not None else 0
+            out.append(st.factored_sizes(self.analysis.uses[k][0])[2] + fold)
+        return tuple(out)
+
+    def tile(self, diff, other, state, fa, fb, same: bool = False):
+        """The ``(groups, *tile)`` kernel of two blocks' factors; ``same=True`` when fb is fa
+        (a diagonal tile of K(X, X)), which lets streamed leaves form each chunk once."""
         if self.method == "jvp":
             return self._jvp_tile(diff, other, state, fa, fb)
         b1 = jax.tree_util.tree_leaves(fa)[0].shape[0]
         b2 = jax.tree_util.tree_leaves(fb)[0].shape[0]
         return contract(fa, fb, self.kinds, self.selection.group_index(),
                         len(self.selection.group_names), self.outputs,
-                        tile_shape(self.outputs, b1, b2, self.num_outputs))
+                        tile_shape(self.outputs, b1, b2, self.num_outputs),
+                        widths=self.widths(), same=same)
 
     def _jvp_tile(self, diff, other, state, xa, xb):
         o, a_dim = self.num_outputs, basis_size(self.outputs, self.num_outputs)
@@ -181,4 +196,4 @@ class Program:
 @functools.lru_cache(maxsize=256)
 def compiled(program: Program):
     """The two jitted steps of ``program``; cached so repeated calls reuse compilations."""
-    return jax.jit(program.factors), jax.jit(program.tile)
+    return jax.jit(program.factors), jax.jit(program.tile, static_argnames="same")

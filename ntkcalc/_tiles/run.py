@@ -73,7 +73,8 @@ def iter_tiles(plan, req, todo: list[Tile] | None = None, *,
                 col_f = factors(x2, t.c0, t.c1, d)
                 if plan.cache_factors:
                     cache[t.j] = col_f
-            pending.append((t, tile_fn(*args[d], row_f.on(d), col_f.on(d))))
+            same = col_f is row_f
+            pending.append((t, tile_fn(*args[d], row_f.on(d), col_f.on(d), same=same)))
             if len(pending) >= len(devs):
                 yield _fetch(*pending.popleft())
         while pending:
