@@ -15,10 +15,11 @@ import dataclasses
 import json
 import math
 import os
-import subprocess
 import sys
 import tempfile
 import time
+
+from .._subprocess import run_child
 
 MODEL = "MLP 784-512-512-512-10"
 WIDTHS = (784, 512, 512, 512, 10)
@@ -110,16 +111,8 @@ def _spawn(spec: dict, *, devices: int | None = None, timeout: float = 3600) -> 
     against getrusage(RUSAGE_CHILDREN) here when that grew."""
     import resource
 
-    env = dict(os.environ)
-    env.pop("XLA_FLAGS", None)
-    if devices:
-        env["XLA_FLAGS"] = f"--xla_force_host_platform_device_count={devices}"
     before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    proc = subprocess.run([sys.executable, "-m", __name__, json.dumps(spec)], env=env,
-                          capture_output=True, text=True, timeout=timeout)
-    if proc.returncode != 0:
-        raise RuntimeError(f"benchmark child failed:\n{proc.stdout}\n{proc.stderr}")
-    out = json.loads(proc.stdout.strip().splitlines()[-1])
+    out = run_child(__name__, [json.dumps(spec)], devices=devices, timeout=timeout)
     peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     # RUSAGE_CHILDREN is the largest of any child so far: a check only when it grew.
     if peak > before and abs(peak / 1e6 - out["self_peak_rss_gb"]) > 0.01:
