@@ -80,13 +80,18 @@ def test_subtree_of_a_train_state(tmp_path, linen):
         load_checkpoint(tmp_path / "state", module=module, subtree="weights")
 
 
-def test_checkpoint_manager_steps(tmp_path, linen):
+def test_checkpoint_manager_steps(tmp_path, linen, caplog):
     module, variables = linen
     scaled = lambda s: jax.tree_util.tree_map(lambda a: a * (1 + s), variables)
     with ocp.CheckpointManager(tmp_path / "run") as mngr:
         for s in (0, 3, 7):
             mngr.save(s, args=ocp.args.StandardSave(scaled(s)))
-    assert checkpoint_steps(tmp_path / "run") == (0, 3, 7)
+    caplog.clear()
+    with caplog.at_level("WARNING"):
+        assert checkpoint_steps(tmp_path / "run") == (0, 3, 7)
+        load_checkpoint(tmp_path / "run", module=module, example=X[:1])
+    # Reading only: orbax's warnings about read-only managers are not the user's concern.
+    assert [r for r in caplog.records if r.name == "absl"] == []
     net3 = load_checkpoint(tmp_path / "run", module=module, example=X[:1], step=3)
     _same_leaves(net3.params, scaled(3)["params"])
     latest = load_checkpoint(tmp_path / "run", module=module, example=X[:1])

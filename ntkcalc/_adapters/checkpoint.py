@@ -21,6 +21,8 @@ dtypes are kept (a float64 checkpoint stays float64 with a float32 template).
 
 from __future__ import annotations
 
+import contextlib
+import logging
 import os
 from collections.abc import Mapping
 from pathlib import Path
@@ -84,10 +86,26 @@ def _read_msgpack(p: Path) -> PyTree:
         ) from None
 
 
+@contextlib.contextmanager
+def _quiet_orbax():
+    """Hold orbax's absl-logger WARNING lines (about read-only managers and item handlers it
+    infers) back while we only read: they are not about anything the user did."""
+    logger = logging.getLogger("absl")
+    level = logger.level
+    logger.setLevel(logging.ERROR)
+    try:
+        yield
+    finally:
+        logger.setLevel(level)
+
+
+@contextlib.contextmanager
 def _manager(p: Path):
     import orbax.checkpoint as ocp
 
-    return ocp.CheckpointManager(p, options=ocp.CheckpointManagerOptions(read_only=True))
+    with _quiet_orbax(), ocp.CheckpointManager(
+            p, options=ocp.CheckpointManagerOptions(read_only=True)) as mngr:
+        yield mngr
 
 
 def checkpoint_steps(path) -> tuple[int, ...]:
@@ -129,11 +147,13 @@ def _read_orbax(p: Path, step: int | None, item: str | None) -> PyTree:
                 f"`step`={step} was given but {str(p)!r} is a single checkpoint, not a "
                 "CheckpointManager directory. Leave `step` out."
             )
-        return ocp.StandardCheckpointer().restore(p)
+        with _quiet_orbax():
+            return ocp.StandardCheckpointer().restore(p)
     if (p / "_CHECKPOINT_METADATA").exists():  # one step directory of a manager
         items = {d.name: d for d in p.iterdir() if (d / "_METADATA").exists()}
         sub = _pick_item(items, item, f"the step directory {str(p)!r}")
-        return ocp.StandardCheckpointer().restore(sub)
+        with _quiet_orbax():
+            return ocp.StandardCheckpointer().restore(sub)
     with _manager(p) as mngr:
         steps = sorted(int(s) for s in mngr.all_steps())
         if not steps:
