@@ -34,10 +34,11 @@ import optax
 import orbax.checkpoint as ocp
 
 from .._adapters.net import Net
-from .._analysis import alignment, feature_rank, forecast, kernel_distance, ridge_fit, risk
+from .._analysis import feature_rank, forecast, ridge_fit, risk
 from .._analysis._result import Result
 from .._kernel import ntk
 from .data import pump_readings
+from .drift import drift
 from .report import ARRAYS, RESULTS, write_report
 
 Scale = Literal["full", "small"]
@@ -306,8 +307,9 @@ def _analyse(path: str, cfg: _Setting, *, progress: bool) -> tuple[dict, _Cautio
         curves, final_params = _train(net, train, test, lr=lr, steps=cfg.steps, record=record,
                                       save_at=save_at, manager=manager)
     _say(progress, "kernels at the checkpoints")
-    kernels = [ntk(_restored(net, model, variables, path, int(s)), train.x, progress=False)
-               for s in save_at]
+    dr = drift(os.path.join(path, "checkpoints"), train.x, y, module=model,
+               variables=variables, steps=save_at.tolist())
+    kernels = list(dr.kernels)
     final = net.replace(params=final_params)
 
     _say(progress, "forecast, risk estimates, drift, alignment, feature rank")
@@ -348,22 +350,17 @@ def _analyse(path: str, cfg: _Setting, *, progress: bool) -> tuple[dict, _Cautio
             **{f"forecast_{k}": getattr(fc, k).tolist() for k in curves},
         },
         "drift": {
-            "steps": save_at.tolist(),
-            "kernel_distance": [kernel_distance(k0, k) for k in kernels],
-            "alignment": [alignment(k, y) for k in kernels],
+            "steps": dr.steps.tolist(),
+            "kernel_distance": dr.distance_to_initial.tolist(),
+            "relative_change": dr.relative_change.tolist(),
+            "alignment": dr.alignment.tolist(),
+            "verdict": dr.verdict,
         },
         "risk": risk_part,
         "feature_rank": {"layer": f"hidden_{cfg.depth - 1}", "width": cfg.width,
                          "checkpoints": {name: _rank_numbers(r) for name, r in ranks.items()}},
     }
     return results, cautions
-
-
-def _restored(net: Net, model, variables, path: str, step: int) -> Net:
-    """``net`` with the parameters saved at ``step`` (its compiled kernels are reused)."""
-    saved = Net.from_checkpoint(os.path.join(path, "checkpoints"), module=model,
-                                variables=variables, step=step)
-    return net.replace(params=saved.params)
 
 
 def _rank_numbers(r) -> dict:

@@ -201,7 +201,8 @@ def _summary(results: dict, spec, cautions: list[str]) -> list[str]:
         f"{fc['observed_test_loss'][-1]:.4f} vs {fc['forecast_test_loss'][-1]:.4f}.",
         f"Kernel drift: distance to the initial kernel {dr['kernel_distance'][-1]:.3g} after "
         f"{tr['steps']} steps (parameters moved {tr['parameter_change']:.2%}); label alignment "
-        f"{dr['alignment'][0]:.3f} → {dr['alignment'][-1]:.3f}.",
+        f"{dr['alignment'][0]:.3f} → {dr['alignment'][-1]:.3f}."
+        + (f" {dr['verdict']}" if dr.get("verdict") else ""),
         f"Test error without a test set: GCV picks ridge {rk['chosen_ridge']:.3g} and estimates "
         f"MSE {rk['gcv_at_chosen']:.4f}; kernel ridge on held-out data gives "
         f"{rk['heldout_at_chosen']:.4f} (accuracy {rk['heldout_accuracy_at_chosen']:.1%}).",
