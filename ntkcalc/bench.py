@@ -3,8 +3,8 @@
 Every measurement runs in a fresh subprocess, so its peak RSS is its own. Each row times the
 hand recipe users write today — ``jax.jit(jax.vmap(jax.jacrev(f)))`` over examples plus an
 einsum — and each ntkcalc method on the same model and inputs, in float32 at matmul precision
-"highest". ``seconds`` is the fastest of three compiled calls (one where the first call took over
-20 s), the same for every method and the recipe; ``first`` includes tracing and compilation.
+"highest". ``seconds`` is the fastest of several compiled calls (5, 3 or 1 by the first call's
+time), the same rule for every method and the recipe; ``first`` includes tracing and compilation.
 
 Rows: the MLP 784-512-512-512-10 (0.93M parameters), a CNN with 3 conv layers (0.33M), a
 transformer encoder block on 16 tokens, and the dataset-scale rows of `ntkcalc._tiles.bench_scale`.
@@ -15,9 +15,10 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import subprocess
 import sys
 import time
+
+from ._subprocess import run_child
 
 MODELS = {
     "mlp": "MLP 784-512-512-512-10 (relu, 0.93M params)",
@@ -88,16 +89,16 @@ def _recipe(net, outputs: str):
     return lambda x: kernel(net.params, x)
 
 
-def _timed(fn, repeats: int = 3):
-    """(first call, fastest of ``repeats`` further calls, result): compile once, then time.
-    Rows whose first call takes over 20 s are timed once more, not ``repeats`` times."""
+def _timed(fn):
+    """(first call, fastest of several further calls, result): compile once, then time the
+    fastest of 5 calls for rows whose first call took under 5 s, of 3 under 20 s, else of 1."""
     import jax
 
     t0 = time.perf_counter()
     out = jax.block_until_ready(fn())
     first = time.perf_counter() - t0
     best = float("inf")
-    for _ in range(repeats if first < 20 else 1):
+    for _ in range(5 if first < 5 else 3 if first < 20 else 1):
         t0 = time.perf_counter()
         out = jax.block_until_ready(fn())
         best = min(best, time.perf_counter() - t0)
@@ -135,15 +136,7 @@ def _child(spec: dict) -> dict:
 
 def spawn(module: str, spec: dict, *, devices: int | None = None, timeout: float = 3600) -> dict:
     """Run ``module``'s child entry point on ``spec`` in a fresh process; its JSON answer."""
-    env = dict(os.environ)
-    env.pop("XLA_FLAGS", None)
-    if devices:
-        env["XLA_FLAGS"] = f"--xla_force_host_platform_device_count={devices}"
-    proc = subprocess.run([sys.executable, "-m", module, "--child", json.dumps(spec)], env=env,
-                          capture_output=True, text=True, timeout=timeout)
-    if proc.returncode != 0:
-        raise RuntimeError(f"benchmark child failed ({spec}):\n{proc.stdout}\n{proc.stderr}")
-    return json.loads(proc.stdout.strip().splitlines()[-1])
+    return run_child(module, ["--child", json.dumps(spec)], devices=devices, timeout=timeout)
 
 
 ROWS = [

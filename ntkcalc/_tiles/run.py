@@ -16,7 +16,7 @@ from collections.abc import Callable, Iterator, Sequence
 import jax
 import numpy as np
 
-from .._engine.program import compiled
+from .._engine.program import compiled, compiled_single
 from .blocking import Tile, mirror, padded, tiles
 
 
@@ -39,11 +39,11 @@ def iter_tiles(plan, req, todo: list[Tile] | None = None, *,
     ``devices=None`` runs on the default device; a sequence spreads tiles round-robin over it.
     Tiles are yielded in ``todo`` order.
     """
-    factors_fn, tile_fn = compiled(plan.program)
     x1 = req.x1
     x2 = x1 if req.x2 is None else req.x2
     b = plan.block
-    todo = tiles(plan.n1, plan.n2, b, symmetric=plan.symmetric) if todo is None else todo
+    whole = tiles(plan.n1, plan.n2, b, symmetric=plan.symmetric)
+    todo = whole if todo is None else todo
     devs = [None] if devices is None else list(devices)
     put = (lambda v, d: v) if devices is None else jax.device_put
     args = {d: put((req.diff, req.other, req.state), d) for d in devs}
@@ -54,6 +54,16 @@ def iter_tiles(plan, req, todo: list[Tile] | None = None, *,
         return _Placed(factors_fn(*args[d], put(padded(x, lo, hi, b), d)), d)
 
     with jax.default_matmul_precision("highest"):
+        if len(whole) == 1 and todo == whole and len(devs) == 1:
+            # The whole kernel is one tile: factors and contraction in one compiled step.
+            (t,) = todo
+            d = devs[0]
+            same = plan.symmetric
+            xa = put(padded(x1, t.r0, t.r1, b), d)
+            xb = xa if same else put(padded(x2, t.c0, t.c1, b), d)
+            yield _fetch(t, compiled_single(plan.program)(*args[d], xa, xb, same=same))
+            return
+        factors_fn, tile_fn = compiled(plan.program)
         row_i, row_f = None, None
         for k, t in enumerate(todo):
             d = devs[k % len(devs)]
