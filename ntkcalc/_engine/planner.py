@@ -25,6 +25,7 @@ from .checks import (
     compute_dtype,
     output_size,
 )
+from .contract import STREAM_CHUNK_BYTES
 from .options import METHODS, OUTPUTS, basis_size, check_choice, tile_shape
 from .program import Program
 from .select import ParamFilter, select
@@ -259,12 +260,13 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
 
     candidates = {}
 
-    def finish(name, program, rows, pair_flops, example_flops, example_bytes, transient, pair_tmp):
+    def finish(name, program, rows, pair_flops, example_flops, example_bytes, transient, pair_tmp,
+               extra=lambda b: 0.0):
         def peak(b):
             # K(X, X) in one tile holds one block of factors (its row is its column).
             sets = 1 if sym and b >= n1 else 2
             held = sets * b * example_bytes + b * transient + b * b * (pair_tmp + tile_elems) * isz
-            return held + 2 * b * b * tile_elems * isz
+            return held + 2 * b * b * tile_elems * isz + extra(b)
 
         block = _blocks(n1, n2, peak, budget)
         if block is None:
@@ -315,10 +317,20 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
         )
         pair_tmp = max([_factored_tmp(analysis.uses[k][0], a, outputs)
                         for k, kind in enumerate(kinds) if kind == "factored"] + [0.0])
+        # A streamed leaf holds two chunks of dense derivatives (both sides) while contracting:
+        # for a block of b examples min(all its input features, max(16 of them,
+        # STREAM_CHUNK_BYTES)) — the chunk `contract.stream_chunk` picks.
+        streamed = [(a * bsz * r * isz, c) for k, kind in enumerate(kinds) if kind == "streamed"
+                    for bsz, _, c, r in [st.factored_sizes(analysis.uses[k][0])]]
+
+        def chunks(b):
+            return max([2.0 * min(b * q * c, max(b * q * 16, STREAM_CHUNK_BYTES))
+                        for q, c in streamed] + [0.0])
+
         prog = dataclasses.replace(base, method="structured", kinds=tuple(kinds),
                                    analysis=analysis, folds=folds)
         finish("structured", prog, rows, pair_flops, example_flops, example_bytes, transient,
-               pair_tmp)
+               pair_tmp, extra=chunks)
 
     # NTK-vector products: per pair, one JVP per output direction.
     if method in ("auto", "jvp"):
