@@ -54,7 +54,8 @@ class Plan:
         num_outputs: O; dtype: the kernel dtype.
         block: examples per tile side; cache_factors: whether every block's factors are kept.
         leaves: per-leaf rows for the chosen method.
-        flops, peak_bytes, seconds: estimated totals (seconds from `machine_rate`).
+        flops, peak_bytes, seconds: estimated totals (seconds: FLOPs at `machine_rate` plus
+            bytes moved at `stream_rate`).
         estimates: {method: estimated seconds} for every method that was costed.
         memory: the byte budget the block size was chosen for.
         rate, stream: the measured matmul FLOP/s and streaming bytes/s the time is estimated at.
@@ -300,7 +301,8 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
         finish("jacobian", prog, rows, sum(C.dense_pair_flops(a, p, outputs) for p in sizes),
                backprop, a * sum(sizes) * isz, transient, 0.0)
 
-    # Structured derivatives: per leaf, factored or dense from its consumer, else fallback.
+    # Structured derivatives: per leaf factored, dense or streamed from its consumer, else the
+    # fallback Jacobian.
     if method in ("auto", "structured"):
         # Each example's dense derivative is written once and read by every tile it is in:
         # per pair, about 2/(block side) reads plus the write shared by the pairs of its row.
