@@ -306,11 +306,12 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
     if method in ("auto", "structured"):
         # Each example's dense derivative is written once and read by every tile it is in:
         # per pair, about 2/(block side) reads plus the write shared by the pairs of its row.
-        side = min(n1, n1 if sym else n2, 256)
+        pricing = _Pricing(rate=rate, flops_per_byte=rate / stream,
+                           side=min(n1, n1 if sym else n2, 256),
+                           examples_per_pair=(n1 + (0 if sym else n2)) / pairs,
+                           dtype_name=req.dtype.name)
         rows, kinds, folds = _structured_rows(analysis, sel, names, shapes, sizes, a, isz,
-                                              outputs, pairs, rate / stream, side,
-                                              (n1 + (0 if sym else n2)) / pairs, rate,
-                                              req.dtype.name)
+                                              outputs, pairs, pricing)
         pair_flops = sum(r.flops for r in rows) / pairs
         example_bytes = sum(r.bytes_per_example for r in rows)
         example_flops = backprop + sum(
@@ -366,9 +367,24 @@ def _factored_tmp(use: st.Use, a: int, outputs: str) -> float:
     return C.factored_pair_elements(a, bsz, t, outputs)
 
 
+@dataclasses.dataclass(frozen=True)
+class _Pricing:
+    """What converts a leaf's work into comparable per-pair costs (FLOP-equivalents).
+
+    rate: measured matmul FLOP/s; flops_per_byte: rate / measured streaming bytes/s;
+    side: examples per tile side (at most 256); examples_per_pair: examples whose factors are
+    written, per pair of examples; dtype_name: the compute dtype (for `cost.formation_rate`).
+    """
+
+    rate: float
+    flops_per_byte: float
+    side: int
+    examples_per_pair: float
+    dtype_name: str
+
+
 def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs,
-                     flops_per_byte: float, side: int, examples_per_pair: float,
-                     rate: float, dtype_name: str):
+                     pricing: _Pricing):
     """Per leaf: the plan row, the representation, and the bias folded into it (if any).
 
     Each factorable leaf takes the cheaper of dense and factored, and a dense one is streamed
@@ -412,12 +428,13 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
             alone = dense_pf + (C.dense_pair_flops(a, sizes[folds[k]], outputs) if extra else 0)
             # One example's dense derivative from its factors, at the speed of a GEMM whose inner
             # dimension is the number of positions t (slow for small t), in matmul FLOPs.
-            form = 2.0 * a * bsz * t * (c + extra) * r * rate / C.formation_rate(t, dtype_name)
+            form = (2.0 * a * bsz * t * (c + extra) * r * pricing.rate
+                    / C.formation_rate(t, pricing.dtype_name))
             dense_bytes = a * (p + (sizes[folds[k]] if extra else 0)) * isz
-            traffic = 2 * C.factored_pair_elements(a, bsz, t, outputs) * isz * flops_per_byte
+            fpb, side, per_pair = pricing.flops_per_byte, pricing.side, pricing.examples_per_pair
+            traffic = 2 * C.factored_pair_elements(a, bsz, t, outputs) * isz * fpb
             costs = {
-                "dense": alone + form * examples_per_pair
-                + dense_bytes * (2.0 / side + examples_per_pair) * flops_per_byte,
+                "dense": alone + form * per_pair + dense_bytes * (2.0 / side + per_pair) * fpb,
                 "factored": fpf + traffic,
                 "streamed": alone + form * 2.0 / side,
             }
