@@ -47,6 +47,8 @@ from ._engine.planner import Plan as Plan
 from ._engine.planner import plan as plan
 from ._kernel import ntk as ntk
 from ._kernel import ntk_by_layer as ntk_by_layer
+from ._kind import KernelArray as KernelArray
+from ._kind import per_output_kernel as per_output_kernel
 from ._tiles.view import RunInfo as RunInfo
 from ._tiles.view import StoredKernel as StoredKernel
 from ._workflows.data import PumpReadings as PumpReadings

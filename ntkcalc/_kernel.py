@@ -7,6 +7,7 @@ import numpy as np
 from ._engine.options import OUTPUTS_DOC, Method, Outputs
 from ._engine.planner import prepare
 from ._engine.select import ParamFilter
+from ._kind import KernelArray
 from ._tiles.drive import compute
 
 _SCALE_DOC = """\
@@ -62,13 +63,15 @@ def ntk(
 {scale_doc}
 
     Returns:
-        numpy array of the shape above (or a `StoredKernel` view of it with ``store``): float32,
-        or float64 when JAX x64 is enabled. All matmuls run at precision "highest".
+        `KernelArray` (a numpy array that remembers its kind: ``k.kind == outputs`` and
+        ``k.num_outputs == O``, so analyses can refuse a kernel of the wrong kind) of the shape
+        above, or a `StoredKernel` view of it with ``store``: float32, or float64 when JAX x64
+        is enabled. All matmuls run at precision "highest".
     """
     req = prepare(net, x1, x2, outputs=outputs, method=method, params=params)
     kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
                          progress=progress, devices=devices)
-    return kernels[0]
+    return _tagged(kernels[0], outputs, req.num_outputs)
 
 
 def ntk_by_layer(
@@ -83,17 +86,28 @@ def ntk_by_layer(
     store=None,
     progress: bool = True,
     devices=None,
+    depth: int = 1,
 ) -> dict[str, np.ndarray]:
     """The kernel split by top-level parameter group: ``{group name: kernel}``.
 
-    Groups are the first key of each parameter's path (``"Dense_0"``, ``"encoder"``, ...). Their
-    sum is ``ntk(net, x1, x2, ...)`` with the same options; computed in one pass. With ``store``
+    Groups are the first ``depth`` keys of each parameter's dotted path: ``depth=1`` gives
+    ``"Dense_0"``, ``"encoder"``; ``depth=2`` splits an ``eqx.nn.MLP``'s ``"layers"`` into
+    ``"layers.0"``, ``"layers.1"``, ... (a name with fewer keys is its own group). Their sum is ``ntk(net, x1, x2, ...)`` with the same options; computed in one pass. With ``store``
     the groups share one zarr array (groups, N1, N2, ...) and each value is a `StoredKernel` view.
     """
-    req = prepare(net, x1, x2, outputs=outputs, method=method, params=params, by_layer=True)
+    req = prepare(net, x1, x2, outputs=outputs, method=method, params=params, by_layer=depth)
     kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
                          progress=progress, devices=devices)
-    return dict(zip(req.selection.group_names, kernels, strict=True))
+    return {name: _tagged(k, outputs, req.num_outputs)
+            for name, k in zip(req.selection.group_names, kernels, strict=True)}
+
+
+def _tagged(kernel, outputs: str, num_outputs: int):
+    """The kernel with its kind: a `KernelArray` in memory, a stored view told its kind."""
+    if isinstance(kernel, np.ndarray):
+        return KernelArray(kernel, kind=outputs, num_outputs=num_outputs)
+    kernel.kind, kernel.num_outputs = outputs, num_outputs
+    return kernel
 
 
 _indented = "\n".join(" " * 12 + line for line in OUTPUTS_DOC.splitlines())

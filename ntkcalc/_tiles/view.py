@@ -43,6 +43,8 @@ class StoredKernel:
         self.array = array
         self.group = group
         self.info = info
+        self.kind: str | None = None  # the outputs mode, set by ntkcalc.ntk (see KernelArray)
+        self.num_outputs: int | None = None
 
     @property
     def shape(self) -> tuple[int, ...]:
