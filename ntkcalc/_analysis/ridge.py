@@ -115,17 +115,36 @@ def _cholesky_solve(k: np.ndarray, y: np.ndarray, ridge: float) -> tuple[np.ndar
     return scipy.linalg.cho_solve(factor, y, check_finite=False), jitter
 
 
+INDEFINITE = (
+    "`{name}` + ridge·I is singular or indefinite for ridge(s) {ridges} (smallest eigenvalue of "
+    "`{name}` ≈ {w_min:.3g}). Use ridges > {floor:.3g}."
+)
+
+
+def indefinite_ridges(w_min: float, ridges: np.ndarray, *, name: str = "k_train"):
+    """The ridges at which ``K + r·I`` is singular or indefinite (``λ_min(K) + r <= 0``).
+
+    The one rule by which `ridge_fit` (several ridges) refuses a ridge and `risk` warns about it.
+
+    Returns:
+        ``(mask, message)``: a boolean mask over ``ridges``, and the message naming the bad
+        ridges and the smallest admissible ridge (None when no ridge is bad).
+    """
+    bad = w_min + ridges <= 0
+    if not np.any(bad):
+        return bad, None
+    return bad, INDEFINITE.format(name=name, ridges=ridges[bad].tolist(), w_min=w_min,
+                                  floor=max(-w_min, 0.0))
+
+
 def _eigh_solve(k: np.ndarray, y: np.ndarray, ridges: np.ndarray) -> np.ndarray:
     w, v = eigh_descending(k)
     denom = w[None, :] + ridges[:, None]  # (R, N)
     top = denom[:, 0]
     low = denom[:, -1]
-    bad = low <= 0
-    if np.any(bad):
-        raise np.linalg.LinAlgError(
-            f"`k_train` + ridge·I is singular or indefinite for ridge(s) {ridges[bad].tolist()} "
-            f"(smallest eigenvalue of `k_train` ≈ {w[-1]:.3g}). Use ridges > {max(-w[-1], 0):.3g}."
-        )
+    _, message = indefinite_ridges(float(w[-1]), ridges)
+    if message:
+        raise np.linalg.LinAlgError(message)
     _checks.warn_if_ill_conditioned(
         float(np.max(top / low)), what="`k_train` + ridge·I (worst ridge)", stacklevel=4
     )
