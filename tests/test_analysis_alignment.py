@@ -88,3 +88,31 @@ def test_bad_input():
         alignment(np.eye(4), np.ones(4))
     with pytest.raises(ValueError, match="not symmetric"):
         kernel_distance(np.triu(np.ones((3, 3))), np.eye(3))
+
+
+def test_integer_labels_mean_one_hot_targets_everywhere():
+    # One label convention (ours): a 1-D integer array is class labels and becomes one-hot rows.
+    # Kernel-target alignment with one-hot targets (Cristianini et al., NeurIPS 2001;
+    # Cortes, Mohri & Rostamizadeh, JMLR 2012 for the centered form) must then be the same
+    # number for both spellings of the labels, to rounding.
+    from sklearn.datasets import load_digits
+
+    import ntkcalc
+
+    digits = load_digits()
+    x = digits.data[:150] / 16.0
+    labels = digits.target[:150]
+    k = x @ x.T + 1.0
+    one_hot = np.eye(10)[labels]
+    assert ntkcalc.alignment(k, labels) == pytest.approx(ntkcalc.alignment(k, one_hot),
+                                                         rel=1e-12, abs=1e-12)
+    ts_int, ts_hot = ntkcalc.task_spectrum(k, labels), ntkcalc.task_spectrum(k, one_hot)
+    np.testing.assert_allclose(ts_int.cumulative, ts_hot.cumulative, rtol=1e-12)
+    r_int = ntkcalc.risk(k, labels, ridges=np.logspace(-2, 2, 5))
+    r_hot = ntkcalc.risk(k, one_hot, ridges=np.logspace(-2, 2, 5))
+    np.testing.assert_allclose(r_int.loo, r_hot.loo, rtol=1e-12)
+    with pytest.raises(ValueError, match=r"class labels.*astype\(float\)"):
+        ntkcalc.alignment(k, labels - 1)  # -1 is no class: say how to pass regression targets
+    # Integer-valued regression targets have an explicit way in: floats.
+    as_float = ntkcalc.alignment(k, labels.astype(float))
+    assert as_float != pytest.approx(ntkcalc.alignment(k, one_hot))

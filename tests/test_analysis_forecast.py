@@ -256,3 +256,89 @@ def test_bad_input(problem, change, match):
     kwargs.update(change)
     with pytest.raises(ValueError, match=match):
         forecast(**kwargs)
+
+
+@pytest.fixture(scope="module")
+def quickstart_model():
+    """The quickstart's model, Dense(256) → tanh → Dense(4), on 40 examples, float64."""
+    import flax.linen as nn
+
+    import ntkcalc
+
+    class MLP(nn.Module):
+        @nn.compact
+        def __call__(self, x):
+            return nn.Dense(4)(nn.tanh(nn.Dense(256)(x)))
+
+    rng = np.random.default_rng(0)
+    x = rng.standard_normal((40, 11))
+    labels = rng.integers(0, 4, size=40)
+    model = MLP()
+    variables = jax.tree_util.tree_map(lambda a: a.astype(jnp.float64),
+                                       model.init(jax.random.key(0), x[:1]))
+    net = ntkcalc.Net.from_linen(model, variables)
+
+    def f(p, xs):
+        return model.apply({"params": p}, xs)
+
+    return dict(net=net, x=x, labels=labels, params=variables["params"], f=f)
+
+
+def test_documented_path_matches_linearized_sgd_with_several_outputs(quickstart_model):
+    # Reference: optax.sgd full-batch on the jax.jvp-linearized flax model (Lee et al., NeurIPS
+    # 2019, arXiv:1902.06720), O = 4 outputs, loss (1/N) Σ ½‖f − y‖². The documented path is
+    # ntk(outputs="full") → forecast; it must agree to 1e-6 in float64.
+    import ntkcalc
+
+    q = quickstart_model
+    k = ntkcalc.ntk(q["net"], q["x"], outputs="full", progress=False)
+    assert k.kind == "full" and k.num_outputs == 4
+    f0 = np.asarray(q["net"](q["x"]))
+    y = np.eye(4)[q["labels"]]
+    steps = np.array([0, 10, 100, 300])
+    fc = ntkcalc.forecast(k, q["labels"], f0, lr=0.05, steps=steps)
+    losses, outs, _ = _train(_linearized(q["f"], q["params"]), q["params"], q["x"], y, lr=0.05,
+                             steps=300, loss="mse")
+    np.testing.assert_allclose(fc.train_outputs, outs[steps], rtol=1e-6, atol=1e-9)
+    np.testing.assert_allclose(fc.train_loss, losses[steps], rtol=1e-6)
+    assert fc.kernel == "full" and fc.stable and fc.kernel_dtype == "float64"
+
+
+def test_trace_kernel_is_refused_for_several_outputs(quickstart_model):
+    # The trace kernel is O·K under Θ = K ⊗ I_O (definition): read as K it makes the forecast O
+    # times too fast, so it is refused with the call that gives the right kernel.
+    import ntkcalc
+
+    q = quickstart_model
+    x = q["x"][:12]
+    k = ntkcalc.ntk(q["net"], x, progress=False)  # default: trace
+    f0 = np.asarray(q["net"](x))
+    with pytest.raises(ValueError, match=r"outputs='full'.*per_output_kernel"):
+        ntkcalc.forecast(k, q["labels"][:12], f0, lr=0.02, steps=3)
+    with pytest.raises(ValueError, match="unknown kind"):
+        ntkcalc.forecast(np.asarray(k), q["labels"][:12], f0, lr=0.02, steps=3)
+    # The approximation at scale is explicit, and the result names it.
+    k_full = ntkcalc.ntk(q["net"], x, outputs="full", progress=False)
+    per = ntkcalc.per_output_kernel(k)
+    np.testing.assert_allclose(per, np.einsum("ijaa->ij", k_full) / 4, rtol=1e-12)
+    fc = ntkcalc.forecast(per, q["labels"][:12], f0, lr=0.02, steps=3)
+    assert fc.kernel == "per-output (trace / 4, assuming Θ = K ⊗ I_4)"
+    exact = ntkcalc.forecast(k_full, q["labels"][:12], f0, lr=0.02, steps=3)
+    assert exact.max_stable_lr > fc.max_stable_lr / 4  # same order, not O× off
+
+
+def test_not_psd_kernel_is_refused(problem):
+    # A Gram matrix J Jᵀ has no negative eigenvalues (definition); −Θ is refused instead of
+    # forecasting a divergence of 1e16.
+    p = problem
+    with pytest.raises(ValueError, match="not positive semi-definite"):
+        forecast(-p["k"], p["labels"], p["f0"], lr=0.5, steps=3)
+
+
+def test_huge_steps_are_refused_and_long_paths_keep_only_requested_steps(problem):
+    p = problem
+    with pytest.raises(ValueError, match="`steps` asks for"):
+        forecast(p["k"], p["labels"], p["f0"], lr=0.5, steps=10**9)
+    fc = forecast(p["k"], p["labels"], p["f0"], lr=0.01, steps=np.array([0, 5000]),
+                  loss="cross-entropy", progress=False)
+    assert fc.train_outputs.shape == (2, 12, 2)

@@ -71,6 +71,11 @@ def square_kernel(name: str, k) -> np.ndarray:
     k = finite_array(name, k)
     if k.ndim != 2 or k.shape[0] != k.shape[1]:
         raise ValueError(NOT_SQUARE.format(name=name, shape=k.shape))
+    if k.shape[0] == 0:
+        raise ValueError(
+            f"`{name}` is an empty (0, 0) kernel: there is nothing to analyse. Compute the "
+            "kernel on at least one example."
+        )
     scale = float(np.max(np.abs(k))) if k.size else 0.0
     asym = float(np.max(np.abs(k - k.T))) / scale if scale > 0 else 0.0
     if asym > SYMMETRY_RTOL:
@@ -89,11 +94,52 @@ def square_operator(name: str, op) -> spla.LinearOperator:
     return op
 
 
-def targets(name: str, y, *, n: int, kname: str, kshape: tuple) -> np.ndarray:
-    """Targets as a finite float64 (n, O) array; a 1-D ``y`` becomes one column."""
+def targets(
+    name: str, y, *, n: int, kname: str, kshape: tuple, num_classes: int | None = None
+) -> np.ndarray:
+    """Targets as a finite float64 (n, O) array, by the one label convention of every analysis.
+
+    - A 1-D array of integers (or booleans) is class labels: it becomes one-hot rows (n, C),
+      with C = ``num_classes`` (the model's outputs, where known) or ``max(y) + 1``. Labels read
+      as one scalar target would make alignments, drifts and fits of a classification task
+      meaningless.
+    - Any float array is regression targets: (n,) is one column, (n, O) is O columns. Pass
+      integer-valued regression targets as floats (``y.astype(float)``).
+    """
+    if is_label_array(y):
+        return one_hot(name, y, n=n, num_classes=num_classes, kname=kname, kshape=kshape)
     y = finite_array(name, y, ndim=(1, 2))
     rows(name, y, n=n, kname=kname, kshape=kshape)
     return y.reshape(n, -1)
+
+
+def is_label_array(y) -> bool:
+    """True for a 1-D integer or boolean array: class labels under the label convention."""
+    dtype = getattr(y, "dtype", None)
+    if dtype is None:
+        y = np.asarray(y)
+        dtype = y.dtype
+    return np.ndim(y) == 1 and (np.issubdtype(dtype, np.integer) or dtype == np.bool_)
+
+
+def one_hot(
+    name: str, y, *, n: int, num_classes: int | None, kname: str, kshape: tuple
+) -> np.ndarray:
+    """Integer class labels (n,) as one-hot rows (n, C) in float64."""
+    arr = np.asarray(y).astype(np.int64)
+    rows(name, arr, n=n, kname=kname, kshape=kshape)
+    if arr.size == 0:
+        return np.zeros((0, num_classes or 0))
+    c = int(arr.max()) + 1 if num_classes is None else num_classes
+    if arr.min() < 0 or arr.max() >= c:
+        where = f"the model has {c} output(s)" if num_classes is not None else "classes"
+        raise ValueError(
+            f"`{name}` holds integer labels in [{arr.min()}, {arr.max()}] but {where}: labels "
+            f"must lie in [0, {c}). Integer arrays are read as class labels; pass one-hot "
+            "targets, labels matching the outputs, or regression targets as floats "
+            f"(`{name}.astype(float)`)."
+        )
+    return np.eye(c)[arr]
 
 
 def rows(name: str, a, *, n: int, kname: str, kshape: tuple) -> None:
@@ -188,20 +234,13 @@ def sorted_times(name: str, values, *, integer: bool) -> np.ndarray:
 def labels(name: str, y, *, n: int, num_classes: int, kname: str, kshape: tuple):
     """Classification targets as (one-hot (n, C) float64, format) or (None, None) if not labels.
 
-    Integer labels are a 1-D integer array with values in ``[0, num_classes)``; one-hot targets
-    are an (n, num_classes) array whose rows are 0/1 with a single 1. Anything else is treated as
-    regression targets (no accuracy).
+    Integer labels are a 1-D integer array with values in ``[0, num_classes)`` (see `targets`);
+    one-hot targets are an (n, num_classes) array whose rows are 0/1 with a single 1. Anything
+    else is treated as regression targets (no accuracy).
     """
-    arr = np.asarray(y)
-    if arr.ndim == 1 and np.issubdtype(arr.dtype, np.integer):
-        rows(name, arr, n=n, kname=kname, kshape=kshape)
-        if arr.size and (arr.min() < 0 or arr.max() >= num_classes):
-            raise ValueError(
-                f"`{name}` holds integer labels in [{arr.min()}, {arr.max()}] but the model has "
-                f"{num_classes} output(s): labels must lie in [0, {num_classes}). Pass one-hot "
-                "targets or labels matching the outputs."
-            )
-        return np.eye(num_classes)[arr], "integer"
+    if is_label_array(y):
+        return one_hot(name, y, n=n, num_classes=num_classes, kname=kname,
+                       kshape=kshape), "integer"
     y2 = targets(name, y, n=n, kname=kname, kshape=kshape)
     if y2.shape[1] == num_classes and num_classes > 1:
         is_01 = np.all((y2 == 0) | (y2 == 1))

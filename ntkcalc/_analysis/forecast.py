@@ -29,6 +29,8 @@ import numpy as np
 import scipy.integrate
 import scipy.special
 
+from .._kind import describe, kind_of
+from .._tiles.progress import bar
 from . import _checks
 from ._eig import eigh_descending
 from ._result import Result
@@ -62,6 +64,12 @@ class Forecast(Result):
         lr: the learning rate.
         max_stable_lr: ``2N / λ_max(Θ)``: above it gradient descent on the mse loss diverges
             along the top eigenvector.
+        stable: the stability verdict, ``lr <= max_stable_lr`` (mse) or ``lr <= 2·max_stable_lr``
+            (cross-entropy; see `forecast`); always True for gradient flow.
+        kernel: which kernel the forecast used: ``"full"`` (exact, the (N, N, O, O) kernel) or
+            ``"per-output"`` (Θ = K ⊗ I_O), with how it was made when that is an assumption.
+        kernel_dtype: the dtype the kernel was computed in (a float32 kernel carries about 7
+            significant digits whatever the dtype of the forecast's own arithmetic).
     """
 
     steps: np.ndarray
@@ -77,6 +85,9 @@ class Forecast(Result):
     flow: bool
     lr: float
     max_stable_lr: float
+    stable: bool = True
+    kernel: str = "full"
+    kernel_dtype: str = "float64"
 
     def departure(self, observed_train_loss, *, tolerance: float = 0.1) -> float:
         """Largest relative gap ``|L_observed − L_forecast| / L_forecast`` over the steps.
@@ -156,10 +167,10 @@ def _mse_closed_form(kmat, kx, r0, steps, *, lr, n, flow):
     c0 = v.T @ r0  # (P, C)
     resid = np.einsum("pk,tk,kc->tpc", v, decay, c0)
     delta = None if kx is None else -np.einsum("mk,tk,kc->tmc", kx @ v, integral, c0)
-    return resid, delta, lam[0]
+    return resid, delta, lam
 
 
-def _cross_entropy_path(kmat, kx, f0, y, steps, *, lr, n, flow, ode_rtol):
+def _cross_entropy_path(kmat, kx, f0, y, steps, *, lr, n, flow, ode_rtol, progress):
     """Train outputs (T, N, O) and ``∫₀ᵗ g`` (flow) or ``lr·Σ_{s<t} g_s`` (T, N, O), cross-entropy.
 
     The test outputs follow as ``f_test,0 − (1/N) Θ(test, train) ∫ g``.
@@ -191,15 +202,107 @@ def _cross_entropy_path(kmat, kx, f0, y, steps, *, lr, n, flow, ode_rtol):
     outs, sums = [], []
     want = iter(steps.tolist())
     target = next(want)
-    for s in range(int(steps[-1]) + 1):
-        while target == s:
-            outs.append(f.copy())
-            sums.append(summed.copy())
-            target = next(want, None)
-        g = _softmax_residual(f, y)
-        f = f - (lr / n) * kernel_times(g)
-        summed = summed + lr * g  # lr·Σ_{s<t} g_s, the discrete counterpart of ∫ g dt
+    last = int(steps[-1])
+    with bar(last, enabled=progress, desc="ntkcalc forecast", unit="step") as shown:
+        for s in range(last + 1):
+            while target == s:  # only the requested steps are kept
+                outs.append(f.copy())
+                sums.append(summed.copy())
+                target = next(want, None)
+            if s == last:
+                break
+            g = _softmax_residual(f, y)
+            f = f - (lr / n) * kernel_times(g)
+            summed = summed + lr * g  # lr·Σ_{s<t} g_s, the discrete counterpart of ∫ g dt
+            shown.update(1)
     return np.stack(outs), np.stack(sums)
+
+
+#: Largest result the forecast builds without being asked differently (bytes): the outputs at
+#: every requested step and the per-eigenvalue factors of the closed form.
+MAX_RESULT_BYTES = 4 * 2**30
+
+WRONG_KIND = (
+    "`{name}` is {what}, but the forecast needs the kernel of each output: it takes an (N, N) "
+    "kernel as K in Θ = K ⊗ I_{o} (the same kernel for every output, no cross-output terms), "
+    "and {why}. Pass ntkcalc.ntk(net, x, outputs='full') (exact; (N, N, {o}, {o})), or "
+    "ntkcalc.per_output_kernel({name}) (K = {how}, exact only if Θ = K ⊗ I_{o})."
+)
+
+
+def _per_output_or_full(name: str, k, *, num_outputs: int) -> str:
+    """Which kernel ``k`` is for a forecast over ``num_outputs`` outputs, or a refusal.
+
+    An (N, N, O, O) array is the full kernel (exact). An (N, N) array is accepted as the
+    per-output kernel when the model has one output, or when it says it is one
+    (`ntkcalc.per_output_kernel`); a trace, logit-sum or unlabelled (N, N) kernel of a model
+    with several outputs is refused, since using it as K would be wrong by a factor of about O.
+    """
+    kind, o = kind_of(k)
+    ndim = np.ndim(k)
+    if kind is not None and o != num_outputs:
+        raise ValueError(
+            f"`{name}` is {describe(kind, o)}, but the outputs have {num_outputs} column(s): "
+            "the kernel and the outputs must come from the same model."
+        )
+    if ndim == 4:
+        return "full"
+    if ndim == 2 and (num_outputs == 1 or kind == "per-output"):
+        note = getattr(k, "note", None) if kind == "per-output" else None
+        return "per-output" + (f" ({note})" if note else "")
+    if ndim == 2 and kind in ("trace", "logit-sum"):
+        why = ("the trace Σ_a Θ_aa is O times K" if kind == "trace"
+               else "the kernel of Σ_a f_a is O times K")
+        how = f"{name} / {num_outputs}"
+        raise ValueError(WRONG_KIND.format(name=name, what=describe(kind, o), o=num_outputs,
+                                           why=f"{why} under that assumption", how=how))
+    if ndim == 2 and np.shape(k)[0] == np.shape(k)[1] or ndim == 2 and name != "k_train":
+        raise ValueError(
+            f"`{name}` is an (N, N) array of unknown kind and the model has {num_outputs} "
+            f"outputs. The forecast reads an (N, N) kernel as K in Θ = K ⊗ I_{num_outputs} (the "
+            "same kernel for every output); a trace kernel read that way would make the forecast "
+            f"{num_outputs} times too fast. Pass the array ntkcalc.ntk returned (it knows its "
+            f"kind), the exact ntkcalc.ntk(net, x, outputs='full'), or, if this array is K, "
+            f"ntkcalc.per_output_kernel({name}, num_outputs={num_outputs})."
+        )
+    if ndim == 3:
+        raise ValueError(WRONG_KIND.format(
+            name=name, what=describe("diagonal", num_outputs), o=num_outputs,
+            why="the 'diagonal' kernel drops the cross-output terms of the exact kernel",
+            how="the mean of the O output kernels"))
+    return "full"  # other ranks are refused with their shape by the validation that follows
+
+
+def _check_result_size(steps: np.ndarray, *, rows: int, n_out: int, cols: int) -> None:
+    """Refuse, naming ``steps``, a request whose kept outputs would not fit in memory."""
+    need = 8 * len(steps) * (2 * rows * n_out + 3 * cols)
+    if need > MAX_RESULT_BYTES:
+        raise ValueError(
+            f"`steps` asks for {len(steps):,} snapshots of {rows:,} × {n_out} outputs, about "
+            f"{need / 2**30:.1f} GiB. Only the requested steps are kept: pass the steps you "
+            "want to see as a sorted array, e.g. np.unique(np.geomspace(1, S, 100).astype(int))."
+        )
+
+
+#: Eigenvalues below ``−PSD_RTOL_FACTOR · N · eps(dtype) · λ_max`` are not rounding: the matrix is
+#: not a kernel (not positive semi-definite). LAPACK's eigenvalues of a PSD matrix stored in
+#: precision eps are accurate to about N·eps·λ_max (Golub & Van Loan, "Matrix Computations",
+#: 4th ed., §8.1, Weyl's inequality); the factor 10 leaves room for the rounding of the kernel's
+#: own computation.
+PSD_RTOL_FACTOR = 10.0
+
+
+def _check_psd(lam: np.ndarray, *, dtype: str) -> None:
+    eps = np.finfo(np.dtype(dtype) if np.dtype(dtype).kind == "f" else np.float64).eps
+    tol = PSD_RTOL_FACTOR * lam.size * eps * max(float(np.max(np.abs(lam))), 0.0)
+    if lam.size and lam[-1] < -tol:
+        raise ValueError(
+            f"`k_train` is not positive semi-definite: its smallest eigenvalue is "
+            f"{lam[-1]:.3g}, below the rounding bound −{tol:.2g} for {dtype}. A neural tangent "
+            "kernel is a Gram matrix J Jᵀ and has no negative eigenvalues; gradient descent "
+            "through this matrix would diverge along that direction. Check how it was built "
+            "(a sign, a difference of kernels, a test-train block passed as train-train)."
+        )
 
 
 def forecast(
@@ -215,6 +318,7 @@ def forecast(
     loss: Loss = "mse",
     flow: bool = False,
     ode_rtol: float = 1e-9,
+    progress: bool = True,
 ) -> Forecast:
     """Forecast gradient descent (or flow) on the linearized model from its kernel.
 
@@ -226,9 +330,17 @@ def forecast(
     ``loss="cross-entropy"`` the function-space map is iterated (discrete, exact for the
     linearized model) or integrated by ``scipy.integrate.solve_ivp`` (DOP853, ``rtol=ode_rtol``).
 
+    Which kernel: the exact forecast takes the full kernel, ``ntkcalc.ntk(net, x,
+    outputs="full")``, of shape (N, N, O, O). An (N, N) kernel is read as K in ``Θ = K ⊗ I_O``
+    (the same kernel for every output): a model with one output, or a kernel made by
+    `ntkcalc.per_output_kernel` (e.g. from the trace kernel at scale, an approximation that the
+    result's ``kernel`` field names). A trace, logit-sum or diagonal kernel of a model with
+    several outputs, or a plain (N, N) array whose kind is unknown, is refused: read as K, the
+    trace kernel would make the forecast O times too fast.
+
     Args:
-        k_train: (N, N) kernel, taken as ``K ⊗ I_O`` (the same kernel for every output, no
-            cross-output terms), or the full (N, N, O, O) kernel ``Θ[i, j, a, b]``.
+        k_train: the full (N, N, O, O) kernel ``Θ[i, j, a, b]``, or an (N, N) per-output kernel
+            (see above).
         y_train: targets: (N,) or (N, O) values, (N,) integer labels in ``[0, O)`` (converted to
             one-hot) or (N, O) one-hot. Cross-entropy needs labels (integer or one-hot).
         f0_train: (N,) or (N, O) outputs of the network at initialization.
@@ -241,9 +353,15 @@ def forecast(
         loss: "mse" or "cross-entropy".
         flow: gradient flow at times ``lr·steps`` instead of discrete steps.
         ode_rtol: relative tolerance of the ODE solver (cross-entropy flow only).
+        progress: a progress bar over steps for the iterated cross-entropy path, shown once it
+            lasts over a second.
 
     Returns:
         `Forecast`.
+
+    Raises:
+        ValueError for a kernel of the wrong kind (above), a kernel that is not positive
+        semi-definite beyond rounding, or ``steps`` whose snapshots would not fit in memory.
 
     Warns:
         RuntimeWarning if ``lr`` exceeds ``max_stable_lr = 2N/λ_max`` (mse, discrete): gradient
@@ -259,6 +377,8 @@ def forecast(
     n = f0.shape[0]
     f0 = f0.reshape(n, -1)
     n_out = f0.shape[1]
+    kernel_used = _per_output_or_full("k_train", k_train, num_outputs=n_out)
+    kernel_dtype = str(np.asarray(k_train).dtype)
     kmat, block = _checks.kernel_to_flat("k_train", k_train, num_outputs=n_out)
     kshape = np.shape(k_train)
     if kmat.shape[0] != (n if block else n * n_out):
@@ -284,6 +404,7 @@ def forecast(
     if y_test is not None and k_test_train is None:
         raise ValueError("`y_test` needs `k_test_train` and `f0_test` to forecast test outputs.")
     if k_test_train is not None:
+        _per_output_or_full("k_test_train", k_test_train, num_outputs=n_out)
         tail = () if block else (n_out, n_out)
         kx_raw = _checks.cross_kernel("k_test_train", k_test_train, n=n, kname="k_train",
                                       tail=tail)
@@ -299,24 +420,29 @@ def forecast(
                 "y_test", y_test, n=m, kname="k_test_train", kshape=kx_raw.shape)
             _checks.same_outputs("y_test", y_t, want=n_out, ref="`f0_train`")
 
-    lam_max = float(eigh_descending(kmat, vectors=False)[0]) if loss != "mse" else None
+    _check_result_size(steps, rows=n + (0 if f0_t is None else f0_t.shape[0]),
+                       n_out=n_out, cols=kmat.shape[0])
     if loss == "mse":
         cols = kmat.shape[0]
-        resid, delta, lam_max = _mse_closed_form(
+        resid, delta, lam = _mse_closed_form(
             kmat, kx, (f0 - y).reshape(cols, -1), steps, lr=lr, n=n, flow=flow)
         train = y[None] + resid.reshape(-1, n, n_out)
         test = None if kx is None else f0_t[None] + delta.reshape(-1, *f0_t.shape)
         loss_fn = _mse
     else:
+        lam = eigh_descending(kmat, vectors=False)
         train, summed = _cross_entropy_path(
-            kmat, kx, f0, y, steps, lr=lr, n=n, flow=flow, ode_rtol=ode_rtol)
+            kmat, kx, f0, y, steps, lr=lr, n=n, flow=flow, ode_rtol=ode_rtol, progress=progress)
         test = None if kx is None else f0_t[None] - np.einsum(
             "mp,tpc->tmc", kx, summed.reshape(len(steps), kmat.shape[0], -1)
         ).reshape(-1, *f0_t.shape) / n
         loss_fn = _cross_entropy
+    _check_psd(lam, dtype=kernel_dtype)
+    lam_max = float(lam[0])
     max_lr = 2.0 * n / lam_max if lam_max > 0 else float("inf")
     limit = max_lr if loss == "mse" else 2.0 * max_lr
-    if not flow and lr > limit:
+    stable = bool(flow or lr <= limit)
+    if not stable:
         warnings.warn(
             f"`lr`={lr:g} exceeds the stability limit {limit:.4g} (2N/λ_max = {max_lr:.4g}"
             f"{'' if loss == 'mse' else ', doubled for cross-entropy'}): gradient descent "
@@ -339,4 +465,7 @@ def forecast(
         flow=bool(flow),
         lr=lr,
         max_stable_lr=max_lr,
+        stable=stable,
+        kernel=kernel_used,
+        kernel_dtype=kernel_dtype,
     )
