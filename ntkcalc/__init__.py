@@ -31,6 +31,10 @@ from ._analysis.hutchpp import estimate_alignment as estimate_alignment
 from ._analysis.hutchpp import estimate_frobenius as estimate_frobenius
 from ._analysis.hutchpp import estimate_participation_ratio as estimate_participation_ratio
 from ._analysis.hutchpp import estimate_trace as estimate_trace
+from ._analysis.laziness import InitSpread as InitSpread
+from ._analysis.laziness import Laziness as Laziness
+from ._analysis.laziness import init_spread as init_spread
+from ._analysis.laziness import laziness as laziness
 from ._analysis.learning_curve import LearningCurve as LearningCurve
 from ._analysis.learning_curve import learning_curve as learning_curve
 from ._analysis.operator import NTKOperator as NTKOperator

@@ -89,28 +89,65 @@ class Forecast(Result):
     kernel: str = "full"
     kernel_dtype: str = "float64"
 
-    def departure(self, observed_train_loss, *, tolerance: float = 0.1) -> float:
-        """Largest relative gap ``|L_observed − L_forecast| / L_forecast`` over the steps.
+    def departure(self, observed, *, tolerance: float | None = None) -> float:
+        """The largest forecast gap over the steps, by the one laziness verdict
+        (`ntkcalc._analysis.laziness`); never NaN.
 
-        ``observed_train_loss`` (T,) is the training loss measured at ``steps`` while actually
-        training the network (same loss convention). Warns (RuntimeWarning) when the gap exceeds
-        ``tolerance``: the run is then not lazy and the forecast should not be trusted for it.
+        ``observed`` is what the real network did at ``steps`` while training:
+
+        - (T, N, O) training outputs (or (T, N) for one output), the definition: the gap is
+          ``max_t ‖f_obs(t) − f_lin(t)‖_F / ‖f_0 − y‖_F``, relative to the initial residual
+          (``‖f_0 − y‖_F = √(2N·L_0)`` for mse). For cross-entropy, whose one-hot targets lie at
+          infinite logits, the scale is instead ``max_t ‖f_lin(t) − f_0‖_F``, how far the
+          forecast moves the outputs (our choice).
+        - (T,) training losses in this module's convention, when outputs were not kept. mse:
+          ``max_t |√L_obs − √L_lin| / √L_0 = | ‖f_obs − y‖ − ‖f_lin − y‖ | / ‖f_0 − y‖``, a lower
+          bound of the output gap; cross-entropy: ``max_t |L_obs − L_lin| / L_0``.
+
+        A forecast or run that diverged (non-finite values) gives inf, with a RuntimeWarning.
+        Warns (RuntimeWarning) with the verdict when the gap exceeds ``tolerance`` (default
+        `laziness.GAP_THRESHOLD`, 10%): the run is then not in the lazy regime.
         """
-        obs = _checks.finite_array("observed_train_loss", observed_train_loss, ndim=(1,))
-        if obs.shape != self.train_loss.shape:
-            raise ValueError(
-                f"`observed_train_loss` has shape {obs.shape} but the forecast has "
-                f"{self.train_loss.shape[0]} steps: pass the loss measured at each of `steps`."
-            )
-        rel = np.abs(obs - self.train_loss) / np.maximum(self.train_loss, np.finfo(float).tiny)
-        i = int(np.argmax(rel))
-        if rel[i] > tolerance:
+        from . import laziness  # imported here: laziness builds on this module's results
+
+        tol = laziness.GAP_THRESHOLD if tolerance is None else tolerance
+        if isinstance(tol, bool) or not isinstance(tol, int | float | np.floating) or tol <= 0:
+            raise ValueError(f"`tolerance` must be a number > 0 (or None), got {tolerance!r}.")
+        obs = np.asarray(observed, dtype=np.float64)
+        outs = self.train_outputs
+        if obs.ndim == 1:
+            if obs.shape != self.train_loss.shape or np.any(obs < 0):
+                raise ValueError(
+                    f"`observed` is {obs.shape}: as losses it must hold {len(self.steps)} values "
+                    ">= 0, the training loss at each of `steps`."
+                )
+            root = self.loss == "mse"
+            obs_v = np.sqrt(obs) if root else obs
+            fc_v = np.sqrt(self.train_loss) if root else self.train_loss
+            gap = laziness.output_gap(obs_v[:, None], fc_v[:, None], scale=float(fc_v[0]),
+                                      steps=self.steps)
+        else:
+            if obs.size == outs.size and obs.shape != outs.shape and outs.shape[-1] == 1:
+                obs = obs.reshape(outs.shape)
+            if self.loss == "mse":
+                scale = float(np.sqrt(2 * outs.shape[1] * self.train_loss[0]))
+            else:
+                with np.errstate(invalid="ignore", over="ignore"):
+                    moved = np.sqrt(np.sum((outs - outs[:1]).reshape(len(outs), -1) ** 2, axis=1))
+                scale = float(np.max(moved[np.isfinite(moved)], initial=0.0))
+            gap = laziness.output_gap(obs, outs, scale=scale, steps=self.steps)
+        worst = float(np.max(gap))
+        if worst > tol:
+            verdict = laziness.laziness(forecast_gap=gap, gap_steps=self.steps,
+                                        gap_threshold=float(tol))
             warnings.warn(
-                NON_LAZY.format(gap=rel[i], tol=tolerance, step=self.steps[i]),
+                f"The training run departs from the linearized forecast — {verdict.sentence}. "
+                "This run is not in the lazy (linearized) regime, and the forecast does not "
+                "describe it. A wider network or a smaller learning rate brings it closer.",
                 RuntimeWarning,
                 stacklevel=2,
             )
-        return float(rel[i])
+        return worst
 
 
 def _mode_factors(lam, steps, *, lr, n, flow):

@@ -1,0 +1,320 @@
+"""The laziness verdict: one definition, used by `drift`, `Forecast.departure`, the report and the
+command line.
+
+A training run is *lazy* when the network stays close to its linearization at initialization, so
+that the initial kernel describes it (Jacot, Gabriel & Hongler, NeurIPS 2018, arXiv:1806.07572;
+Chizat, Oyallon & Bach, NeurIPS 2019, arXiv:1812.07956). Three criteria, each with its threshold:
+
+1. **Kernel relative change** ``c(t) = ‖K_t − K_0‖_F / ‖K_0‖_F``, which sees a kernel that only
+   grows or shrinks. For wide networks in the NTK parameterization it shrinks as ``1/√width``
+   (Lee et al., "Wide Neural Networks of Any Depth Evolve as Linear Models Under Gradient
+   Descent", NeurIPS 2019, arXiv:1902.06720, their relative-change plots).
+2. **Kernel distance** ``d(t) = 1 − ⟨K_t, K_0⟩_F / (‖K_t‖_F ‖K_0‖_F)``, blind to scale, which sees
+   the kernel turning (e.g. towards the labels); Fort et al., NeurIPS 2020, arXiv:2010.15110, track
+   it and its rate ("kernel velocity") over training.
+3. **Forecast gap on outputs** ``g(t) = ‖f_obs(t) − f_lin(t)‖_F / ‖f_0 − y‖_F``: how far the
+   trained network's training outputs are from those of the linearized model, relative to the
+   initial residual. Unlike a relative gap of losses it stays meaningful as the loss goes to
+   zero: a run whose outputs track the forecast to 1% of the distance they travelled is lazy
+   however small the final loss is.
+
+Thresholds (`KERNEL_THRESHOLD` = 5% on ``c`` and ``d``, `GAP_THRESHOLD` = 10% on ``g``) are our
+choice, not a published standard: 5% of the kernel is where, in this package's tests, forecasts
+of train and test curves start to miss visibly; 10% of the initial residual is a gap a plot of the
+curves shows.
+
+**The init-spread yardstick.** The same two kernel quantities between the kernels of a few
+independent initializations of the same architecture at the same inputs (`init_spread`, the mean
+over pairs) tell how much the kernel changes by the random initialization alone. "The kernel
+moved" is said only when its change exceeds both the threshold and this spread
+(``beyond_spread``). A change above the threshold but within the spread still makes the run not
+lazy — a forecast from the initial kernel misses by what the kernel changed, whatever a new seed
+would do — but the sentence says that the initial kernel is itself that uncertain at this width
+(the fluctuation of the empirical kernel at initialization and its change in training both shrink
+as ``1/√width``, Lee et al. 2019). Using the spread as a yardstick is our choice.
+
+The run is lazy when no measured criterion fails. `Laziness.sentence` says so in one line with
+the numbers; the same object feeds every place that states a verdict.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import itertools
+import warnings
+from collections.abc import Sequence
+
+import numpy as np
+
+from . import _checks
+from ._result import Result
+from .alignment import kernel_distance
+
+#: Threshold on the kernel's relative change and distance to the initial kernel (our choice).
+KERNEL_THRESHOLD = 0.05
+#: Threshold on the forecast gap on outputs, relative to the initial residual (our choice).
+GAP_THRESHOLD = 0.10
+
+DIVERGED = (
+    "The {what} diverged (non-finite values from step {step}): the forecast gap is inf. "
+    "{hint}"
+)
+
+
+def relative_change(k, k0) -> float:
+    """``‖K − K_0‖_F / ‖K_0‖_F`` for two kernels of the same shape."""
+    a, b = np.asarray(k, dtype=np.float64), np.asarray(k0, dtype=np.float64)
+    if a.shape != b.shape:
+        raise ValueError(
+            f"The kernels are {a.shape} and {b.shape}: both must be over the same examples."
+        )
+    norm = float(np.linalg.norm(b))
+    if norm == 0:
+        raise ValueError("The reference kernel has zero Frobenius norm: the change is undefined.")
+    return float(np.linalg.norm(a - b)) / norm
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
+class InitSpread(Result):
+    """How much the kernel differs between independent initializations (the yardstick).
+
+    Fields:
+        relative_change: mean over pairs (a, b) of ``‖K_a − K_b‖_F / √(‖K_a‖_F ‖K_b‖_F)``.
+        distance: mean over pairs of ``1 − cos(K_a, K_b)`` (`kernel_distance`).
+        count: the number of initializations.
+    """
+
+    relative_change: float
+    distance: float
+    count: int
+
+
+def init_spread(kernels: Sequence) -> InitSpread:
+    """The spread between kernels of independent initializations at the same inputs.
+
+    Args:
+        kernels: at least two (N, N) kernels (or (N·O, N·O) matrices) of the same architecture,
+            each at a different random initialization, over the same inputs in the same order.
+
+    Returns:
+        `InitSpread`, the mean over all pairs; symmetric in each pair.
+    """
+    if isinstance(kernels, np.ndarray) and kernels.ndim == 3:
+        kernels = list(kernels)
+    if not isinstance(kernels, Sequence) or len(kernels) < 2:
+        raise ValueError(
+            "`kernels` must be a sequence of at least 2 kernels of independent "
+            f"initializations, got {type(kernels).__name__}"
+            f"{f' of length {len(kernels)}' if isinstance(kernels, Sequence) else ''}."
+        )
+    mats = [_checks.square_kernel(f"kernels[{i}]", k) for i, k in enumerate(kernels)]
+    changes, distances = [], []
+    for a, b in itertools.combinations(mats, 2):
+        scale = np.sqrt(np.linalg.norm(a) * np.linalg.norm(b))
+        changes.append(float(np.linalg.norm(a - b) / scale))
+        distances.append(kernel_distance(a, b))
+    return InitSpread(relative_change=float(np.mean(changes)), distance=float(np.mean(distances)),
+                      count=len(mats))
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
+class Laziness(Result):
+    """The laziness verdict with its criteria, thresholds and numbers.
+
+    Fields:
+        lazy: no measured criterion failed.
+        sentence: one line saying so, with the numbers.
+        relative_change: the largest kernel relative change to the initial kernel, or None.
+        distance: the largest kernel distance to the initial kernel, or None.
+        forecast_gap: the largest forecast gap on training outputs relative to the initial
+            residual, or None when not measured.
+        spread: the init-spread yardstick, or None when not measured.
+        kernel_threshold, gap_threshold: the thresholds used.
+        failed: names of the failed criteria ("relative_change", "distance", "forecast_gap").
+        first_step: the first step at which a criterion failed, or None (or when the criteria
+            were given as single numbers).
+        beyond_spread: whether the kernel's change exceeded the init spread (None without one).
+    """
+
+    lazy: bool
+    sentence: str
+    relative_change: float | None
+    distance: float | None
+    forecast_gap: float | None
+    spread: InitSpread | None
+    kernel_threshold: float
+    gap_threshold: float
+    failed: tuple[str, ...]
+    first_step: int | None
+    beyond_spread: bool | None
+
+    def to_dict(self) -> dict:
+        """Every number and the sentence as plain Python values (for JSON)."""
+        out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
+        out["failed"] = list(self.failed)
+        out["spread"] = None if self.spread is None else dataclasses.asdict(self.spread)
+        return out
+
+
+def _curve(name: str, values, steps):
+    if values is None:
+        return None
+    arr = np.atleast_1d(np.asarray(values, dtype=np.float64))
+    if arr.ndim != 1 or arr.size == 0 or np.any(np.isnan(arr)) or np.any(arr < 0):
+        raise ValueError(
+            f"`{name}` must be a non-negative number or 1-D array without NaN, got {values!r}."
+        )
+    if steps is None:  # a single number has no step; a curve counts 0, 1, ...
+        return arr, None if np.ndim(values) == 0 else np.arange(arr.size)
+    at = np.asarray(steps)
+    if at.shape != arr.shape:
+        raise ValueError(f"`{name}` has {arr.size} values but its steps have {at.size}.")
+    return arr, at
+
+
+def _threshold(name: str, value) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float | np.floating) or not (
+            0 < value < np.inf):
+        raise ValueError(f"`{name}` must be a finite number > 0, got {value!r}.")
+    return float(value)
+
+
+def laziness(
+    *,
+    relative_change=None,
+    distance=None,
+    forecast_gap=None,
+    steps=None,
+    gap_steps=None,
+    spread: InitSpread | None = None,
+    kernel_threshold: float = KERNEL_THRESHOLD,
+    gap_threshold: float = GAP_THRESHOLD,
+) -> Laziness:
+    """The laziness verdict from whichever criteria were measured (see the module docstring).
+
+    Args:
+        relative_change: (T,) ``‖K_t − K_0‖_F / ‖K_0‖_F`` per step, or its largest value.
+        distance: (T,) ``1 − cos(K_t, K_0)`` per step, or its largest value.
+        forecast_gap: (T',) ``‖f_obs(t) − f_lin(t)‖ / ‖f_0 − y‖`` per step (`output_gap`); inf
+            for a diverged run or forecast.
+        steps, gap_steps: the training steps of the kernel curves and of the gap curve (default
+            0, 1, ...), to name the first failing step.
+        spread: the init-spread yardstick (`init_spread`), or None.
+        kernel_threshold: threshold > 0 on relative change and distance.
+        gap_threshold: threshold > 0 on the forecast gap.
+
+    Returns:
+        `Laziness`. At least one criterion must be given.
+    """
+    kt = _threshold("kernel_threshold", kernel_threshold)
+    gt = _threshold("gap_threshold", gap_threshold)
+    curves = {
+        "relative_change": _curve("relative_change", relative_change, steps),
+        "distance": _curve("distance", distance, steps),
+        "forecast_gap": _curve("forecast_gap", forecast_gap, gap_steps),
+    }
+    if all(c is None for c in curves.values()):
+        raise ValueError(
+            "Pass at least one criterion: `relative_change`, `distance` or `forecast_gap`."
+        )
+    if spread is not None and not isinstance(spread, InitSpread):
+        raise TypeError(f"`spread` must be an InitSpread (init_spread), got {type(spread)}.")
+    limits = {"relative_change": kt, "distance": kt, "forecast_gap": gt}
+    failed, first = [], None
+    for name, curve in curves.items():
+        if curve is None:
+            continue
+        values, at = curve
+        over = values > limits[name]
+        if np.any(over):
+            failed.append(name)
+            if at is not None:
+                s = int(at[int(np.argmax(over))])
+                first = s if first is None else min(first, s)
+    peak = {name: None if c is None else float(np.max(c[0])) for name, c in curves.items()}
+    kernel = [n for n in ("relative_change", "distance") if peak[n] is not None]
+    own = None if spread is None else {"relative_change": spread.relative_change,
+                                       "distance": spread.distance}
+    beyond = None if own is None or not kernel else any(
+        peak[n] > max(kt, own[n]) for n in kernel)
+    parts = []
+    if kernel:
+        parts.append(_kernel_phrase(peak, kernel, kt, spread))
+    if peak["forecast_gap"] is not None:
+        parts.append(_gap_phrase(peak["forecast_gap"], gt))
+    lazy = not failed
+    head = "lazy" if lazy else "not lazy" + ("" if first is None else f" (from step {first})")
+    sentence = f"{head}: " + "; ".join(parts)
+    if any(n in failed for n in kernel):
+        if beyond is False:
+            sentence += (" — the kernel changed by more than the threshold but no more than "
+                         "between independent initializations: at this width the initial kernel "
+                         "is itself that uncertain")
+        else:
+            sentence += " — the kernel moved"
+            if beyond:
+                sentence += " beyond what the initialization alone changes"
+    return Laziness(
+        lazy=lazy, sentence=sentence, relative_change=peak["relative_change"],
+        distance=peak["distance"], forecast_gap=peak["forecast_gap"], spread=spread,
+        kernel_threshold=kt, gap_threshold=gt, failed=tuple(failed), first_step=first,
+        beyond_spread=beyond,
+    )
+
+
+def _kernel_phrase(peak: dict, names: list[str], threshold: float, spread) -> str:
+    label = {"relative_change": "relative change ‖K_t − K_0‖/‖K_0‖",
+             "distance": "distance 1 − cos(K_t, K_0)"}
+    text = "kernel " + ", ".join(f"{label[n]} up to {peak[n]:.2%}" for n in names)
+    text += f" (threshold {threshold:.0%}"
+    if spread is not None:
+        own = {"relative_change": spread.relative_change, "distance": spread.distance}
+        text += (f"; between {spread.count} independent initializations "
+                 + ", ".join(f"{own[n]:.2%}" for n in names))
+    return text + ")"
+
+
+def _gap_phrase(gap: float, threshold: float) -> str:
+    value = "inf (diverged)" if not np.isfinite(gap) else f"{gap:.2%}"
+    return (f"training outputs off the linearized forecast by up to {value} of the initial "
+            f"residual ‖f_0 − y‖ (threshold {threshold:.0%})")
+
+
+def output_gap(observed, forecast, *, scale: float, steps=None,
+               observed_name: str = "observed") -> np.ndarray:
+    """``‖f_obs(t) − f_lin(t)‖_F / scale`` per step (T,); inf, with a RuntimeWarning, at steps
+    where either side is not finite (a diverged run or forecast). Never NaN.
+
+    Args:
+        observed: (T, ...) outputs of the trained network at the forecast's steps.
+        forecast: (T, ...) outputs of the linearized model at the same steps.
+        scale: the initial residual ``‖f_0 − y‖_F``; 0 makes every nonzero gap inf.
+        steps: (T,) step numbers, for messages (default 0, 1, ...).
+        observed_name: the argument name, for messages.
+    """
+    obs = np.asarray(observed, dtype=np.float64)
+    fc = np.asarray(forecast, dtype=np.float64)
+    if obs.shape != fc.shape:
+        raise ValueError(
+            f"`{observed_name}` has shape {obs.shape} but the forecast's are {fc.shape}: pass "
+            "the network's values at each of the forecast's steps."
+        )
+    at = np.arange(len(obs)) if steps is None else np.asarray(steps)
+    with np.errstate(invalid="ignore", over="ignore"):
+        diff = np.sqrt(np.sum((obs - fc).reshape(len(obs), -1) ** 2, axis=1))
+    for what, arr, hint in (
+        ("linearized forecast", fc, "The learning rate is above the stability limit 2N/λ_max; "
+         "the forecast, like gradient descent, blows up."),
+        (f"observed run (`{observed_name}`)", obs, "The training run itself diverged."),
+    ):
+        rows = ~np.all(np.isfinite(arr.reshape(len(arr), -1)), axis=1)
+        if np.any(rows):
+            warnings.warn(DIVERGED.format(what=what, step=at[int(np.argmax(rows))], hint=hint),
+                          RuntimeWarning, stacklevel=3)
+    finite = np.isfinite(diff)
+    gap = np.full(diff.shape, np.inf)
+    gap[finite & (diff == 0)] = 0.0
+    moved = finite & (diff > 0)
+    if scale > 0:
+        gap[moved] = diff[moved] / scale
+    return gap
