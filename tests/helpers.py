@@ -190,3 +190,18 @@ ZOO = [
          lambda r, n: r.integers(0, 11, size=(n, 4)).astype(np.int32)),
     Case("shared-weight", _shared, lambda r, n: r.normal(size=(n, 5))),
 ]
+
+
+def check_modes(net: ntkcalc.Net, x1, x2, *, modes=("full", "trace", "diagonal", "logit-sum"),
+                method="auto", params=None):
+    """``ntk`` of ``net`` in each outputs mode against the dense jax.jacrev reference (float64,
+    rtol 1e-10): Θ(x1, x1) in every mode of ``modes``, Θ(x1, x2) in the first."""
+    assert all(leaf.dtype == np.float64 for leaf in jax.tree_util.tree_leaves(net.params))
+    r11 = reference_full(net, x1, params=params)
+    for outputs in modes:
+        k = ntkcalc.ntk(net, x1, method=method, outputs=outputs, params=params, progress=False)
+        assert np.asarray(k).dtype == np.float64
+        assert_close(k, reduce_mode(r11, outputs))
+    k12 = ntkcalc.ntk(net, x1, x2, method=method, outputs=modes[0], params=params,
+                      progress=False)
+    assert_close(k12, reduce_mode(reference_full(net, x1, x2, params=params), modes[0]))

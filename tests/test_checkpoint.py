@@ -8,6 +8,7 @@ equals the original Net's kernel and the dense jax.jacrev reference (tests/helpe
 from __future__ import annotations
 
 import pickle
+import re
 
 import jax
 import numpy as np
@@ -187,3 +188,28 @@ def test_bad_arguments(tmp_path, linen, nnx_model):
     _save(tmp_path / "ck", variables)
     with pytest.raises(ValueError, match="`example`, `variables` and apply keywords are for linen"):
         load_checkpoint(tmp_path / "ck", module=nnx_model, example=X)
+
+
+@pytest.mark.parametrize("damage", [b"{not json", b""])
+def test_damaged_metadata_names_the_path(tmp_path, linen, damage):
+    # Before: a bare JSONDecodeError from orbax that named no file.
+    module, variables = linen
+    _save(tmp_path / "ck", variables)
+    (tmp_path / "ck" / "_METADATA").write_bytes(damage)
+    with pytest.raises(ValueError) as err:
+        load_checkpoint(tmp_path / "ck", module=module)
+    msg = str(err.value)
+    assert f"Could not read the orbax checkpoint at {str(tmp_path / 'ck')!r}" in msg
+    assert f"Damaged metadata: {tmp_path / 'ck' / '_METADATA'}." in msg
+
+
+def test_damaged_step_metadata_names_the_path(tmp_path, linen):
+    module, variables = linen
+    with ocp.CheckpointManager(tmp_path / "run") as mngr:
+        mngr.save(1, args=ocp.args.StandardSave(variables))
+        mngr.wait_until_finished()
+    step = tmp_path / "run" / "1"
+    (step / "_CHECKPOINT_METADATA").write_bytes(b"{garbage")
+    with pytest.raises(ValueError, match="Could not read the orbax checkpoint at .*Damaged "
+                                         "metadata: " + re.escape(f"{step}/_CHECKPOINT_METADATA")):
+        load_checkpoint(tmp_path / "run", module=module)

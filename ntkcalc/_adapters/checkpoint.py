@@ -22,6 +22,7 @@ dtypes are kept (a float64 checkpoint stays float64 with a float32 template).
 from __future__ import annotations
 
 import contextlib
+import json
 import logging
 import os
 from collections.abc import Mapping
@@ -122,6 +123,38 @@ def checkpoint_steps(path) -> tuple[int, ...]:
         return tuple(sorted(int(s) for s in mngr.all_steps()))
 
 
+def _damaged_metadata(p: Path) -> list[str]:
+    """Orbax metadata files (JSON objects) at ``p`` and up to two levels below that do not parse."""
+    bad = []
+    for depth in ("", "*/", "*/*/"):
+        for name in ("_METADATA", "_CHECKPOINT_METADATA"):
+            for f in sorted(p.glob(depth + name)):
+                try:
+                    ok = isinstance(json.loads(f.read_text()), dict)
+                except (ValueError, OSError):
+                    ok = False
+                if not ok:
+                    bad.append(str(f))
+    return bad
+
+
+def _restore(p: Path, read, *args):
+    """``read(*args)`` (an orbax call on the checkpoint at ``p``), with any failure of orbax
+    reported as a ValueError that names the checkpoint and any damaged metadata file."""
+    try:
+        with _quiet_orbax():
+            return read(*args)
+    except Exception as err:  # noqa: BLE001 - orbax and json raise many unrelated types
+        bad = _damaged_metadata(p)
+        damaged = f" Damaged metadata: {', '.join(bad)}." if bad else ""
+        first = str(err).strip().splitlines()[0] if str(err).strip() else ""
+        raise ValueError(
+            f"Could not read the orbax checkpoint at {str(p)!r}: {type(err).__name__}: "
+            f"{first.rstrip('.')}.{damaged} The checkpoint is damaged or not one orbax can "
+            "restore; save it again, or pass another checkpoint (or `step=`)."
+        ) from err
+
+
 def _pick_item(items: Mapping, item: str | None, where: str) -> PyTree:
     names = sorted(items)
     if item is None:
@@ -147,15 +180,13 @@ def _read_orbax(p: Path, step: int | None, item: str | None) -> PyTree:
                 f"`step`={step} was given but {str(p)!r} is a single checkpoint, not a "
                 "CheckpointManager directory. Leave `step` out."
             )
-        with _quiet_orbax():
-            return ocp.StandardCheckpointer().restore(p)
+        return _restore(p, ocp.StandardCheckpointer().restore, p)
     if (p / "_CHECKPOINT_METADATA").exists():  # one step directory of a manager
         items = {d.name: d for d in p.iterdir() if (d / "_METADATA").exists()}
         sub = _pick_item(items, item, f"the step directory {str(p)!r}")
-        with _quiet_orbax():
-            return ocp.StandardCheckpointer().restore(sub)
+        return _restore(sub, ocp.StandardCheckpointer().restore, sub)
     with _manager(p) as mngr:
-        steps = sorted(int(s) for s in mngr.all_steps())
+        steps = sorted(int(s) for s in _restore(p, mngr.all_steps))
         if not steps:
             raise ValueError(
                 f"`path`={str(p)!r} holds no orbax checkpoint (no _METADATA and no numbered step "
@@ -165,7 +196,7 @@ def _read_orbax(p: Path, step: int | None, item: str | None) -> PyTree:
             step = steps[-1]
         elif step not in steps:
             raise ValueError(f"`step`={step} is not saved in {str(p)!r}; saved steps: {steps}.")
-        restored = mngr.restore(step)
+        restored = _restore(p, mngr.restore, step)
     if isinstance(restored, ocp.args.Composite):
         return _pick_item(dict(restored.items()), item, f"step {step} of {str(p)!r}")
     return restored

@@ -7,6 +7,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .._adapters.errors import NetCallError, constructor_hint
 from .._adapters.net import Net
 from .select import leaf_names
 
@@ -32,9 +33,7 @@ def as_compute(tree, dtype):
 def check_net(net) -> Net:
     if not isinstance(net, Net):
         raise TypeError(
-            f"`net` must be an ntkcalc.Net, got {type(net).__name__}. Wrap a function with "
-            "`ntkcalc.Net(apply, params)`, a linen module with `Net.from_linen(module, variables)` "
-            "or an nnx module with `Net.from_nnx(model)`."
+            f"`net` must be an ntkcalc.Net, got {type(net).__name__}. {constructor_hint(net)}"
         )
     return net
 
@@ -123,6 +122,8 @@ def _output_size(net: Net, params, state, x: np.ndarray, name: str) -> int:
         spec = jax.ShapeDtypeStruct((b,) + x.shape[1:], x.dtype)
         try:
             out = jax.eval_shape(net.call, params, state, spec)
+        except NetCallError:  # the Net's configuration, not the inputs: its message says what to do
+            raise
         except Exception as err:  # noqa: BLE001
             msg = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
             raise ValueError(
@@ -134,7 +135,8 @@ def _output_size(net: Net, params, state, x: np.ndarray, name: str) -> int:
         if len(leaves) != 1:
             raise ValueError(
                 f"the model returned {len(leaves)} arrays; the kernel needs a single output array "
-                "with the batch on axis 0. Wrap `apply` to return the one output to study."
+                "with the batch on axis 0. Pick one with `net.select_outputs(item=...)` (a dict "
+                "key or tuple position)."
             )
         sizes[b] = leaves[0].shape
     s1, s2 = sizes[1], sizes[2]

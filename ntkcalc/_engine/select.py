@@ -79,12 +79,27 @@ def _matcher(params_filter: ParamFilter) -> Callable[[str], bool]:
     )
 
 
-def select(params, params_filter: ParamFilter = None, *, by_layer: bool = False) -> Selection:
+def _check_depth(by_layer: bool | int) -> int:
+    """The grouping depth: 0 (no grouping) for False, 1 for True, else a positive int."""
+    if isinstance(by_layer, bool):
+        return int(by_layer)
+    if not isinstance(by_layer, int) or by_layer < 1:
+        raise ValueError(
+            f"`depth`={by_layer!r}: pass a positive int, the number of leading parts of the "
+            "dotted parameter names that name a group (1: 'encoder', 2: 'encoder.layers')."
+        )
+    return by_layer
+
+
+def select(params, params_filter: ParamFilter = None, *, by_layer: bool | int = False
+           ) -> Selection:
     """Resolve a ``params=`` filter to the differentiated leaves of ``params``.
 
     Integer and boolean leaves are never differentiated: unfiltered they raise, since a kernel over
-    them is undefined, and a filter can exclude them.
+    them is undefined, and a filter can exclude them. ``by_layer`` groups the leaves by the first
+    ``by_layer`` parts of their dotted names (``True`` = 1: ``"Dense_0"``; 2: ``"layers.0"``).
     """
+    depth = _check_depth(by_layer)
     names = leaf_names(params)
     leaves = jax.tree_util.tree_leaves(params)
     if not leaves:
@@ -105,8 +120,8 @@ def select(params, params_filter: ParamFilter = None, *, by_layer: bool = False)
                 "and an integer or boolean leaf has no derivative. Move it into the Net's frozen "
                 "state, or exclude it with `params=`."
             )
-    if by_layer:
-        groups = tuple(names[i].split(".")[0] for i in indices)
+    if depth:
+        groups = tuple(".".join(names[i].split(".")[:depth]) for i in indices)
     else:
         groups = ("all",) * len(indices)
     group_names = tuple(dict.fromkeys(groups))
