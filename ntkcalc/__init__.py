@@ -53,6 +53,14 @@ from ._kernel import ntk as ntk
 from ._kernel import ntk_by_layer as ntk_by_layer
 from ._kind import KernelArray as KernelArray
 from ._kind import per_output_kernel as per_output_kernel
+from ._sketch.analysis import FeatureRidge as FeatureRidge
+from ._sketch.analysis import Uncertain as Uncertain
+from ._sketch.analysis import features_alignment as features_alignment
+from ._sketch.analysis import features_distance as features_distance
+from ._sketch.analysis import features_ridge as features_ridge
+from ._sketch.analysis import features_spectrum as features_spectrum
+from ._sketch.features import Features as Features
+from ._sketch.features import ntk_features as ntk_features
 from ._tiles.view import RunInfo as RunInfo
 from ._tiles.view import StoredKernel as StoredKernel
 from ._workflows.data import PumpReadings as PumpReadings
