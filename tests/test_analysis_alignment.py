@@ -116,3 +116,13 @@ def test_integer_labels_mean_one_hot_targets_everywhere():
     # Integer-valued regression targets have an explicit way in: floats.
     as_float = ntkcalc.alignment(k, labels.astype(float))
     assert as_float != pytest.approx(ntkcalc.alignment(k, one_hot))
+
+
+def test_kernel_distance_of_a_kernel_to_itself_is_zero_not_negative():
+    # 1 − cos(K, K) can round to −eps; a distance is never negative (definition).
+    import ntkcalc
+
+    rng = np.random.default_rng(3)
+    a = rng.standard_normal((30, 7))
+    for scale in (1.0, 3.0, 1e-3):
+        assert 0.0 <= ntkcalc.kernel_distance(a @ a.T, scale * a @ a.T) < 1e-14

@@ -85,10 +85,11 @@ def kernel_distance(k1, k2) -> float:
     """``1 − ⟨K1, K2⟩_F / (‖K1‖_F ‖K2‖_F)``, uncentered, in [0, 2].
 
     Used to track how far the empirical NTK moves during training (Fort, Dziugaite, Paul,
-    Kharaghani, Roy & Ganguli, NeurIPS 2020, arXiv:2010.15110). 0 for kernels equal up to scale.
+    Kharaghani, Roy & Ganguli, NeurIPS 2020, arXiv:2010.15110). 0 for kernels equal up to scale
+    (rounding can put the cosine a few eps above 1: the distance is clipped to [0, 2]).
     """
     a, b = _kernel_pair(k1, k2)
-    return 1.0 - _cosine(a, b, names=("k1", "k2"), centered=False)
+    return float(np.clip(1.0 - _cosine(a, b, names=("k1", "k2"), centered=False), 0.0, 2.0))
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
