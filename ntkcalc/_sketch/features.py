@@ -40,9 +40,9 @@ from .._tiles.fingerprint import differences
 from .._tiles.messages import NOT_A_STORE, STORE_INCOMPLETE, STORE_MISMATCH
 from .._tiles.placement import barrier, process, share
 from .._tiles.progress import logger
-from .._tiles.store import check_writable, describe, read_fingerprint
+from .._tiles.store import check_writable, describe
 from .block import Sketch, compiled
-from .store import FeatureStore, fingerprint
+from .store import FeatureStore, fingerprint, read_fingerprint
 
 FeatureOutputs = Literal["trace", "logit-sum", "full"]
 FeatureMethod = Literal["structured", "jvp"]

@@ -39,6 +39,19 @@ def input_hash(x) -> str:
     return array_hash(np.asarray([n]), *(np.asarray(x[i:i + 1]) for i in rows))
 
 
+def read_fingerprint(store) -> dict | None:
+    """The fingerprint recorded at ``store`` (a features or a kernel store), or None when there
+    is no readable ntkcalc record there."""
+    try:
+        record = zarr.open_group(store, mode="r").attrs.get(ATTR)
+    except (FileNotFoundError, zarr.errors.GroupNotFoundError,
+            zarr.errors.NodeTypeValidationError):
+        return None
+    if not isinstance(record, dict) or not isinstance(record.get("fingerprint"), dict):
+        return None
+    return dict(record["fingerprint"])
+
+
 def fingerprint(*, req, x, sketch, seed: int, outputs: str, block: int) -> dict:
     """The record a resumed features store must match."""
     params = [*req.diff, *req.other, *jax.tree_util.tree_leaves(req.state)]
