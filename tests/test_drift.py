@@ -21,6 +21,7 @@ import pytest
 from helpers import assert_close, f64, reduce_mode, reference_full
 
 import ntkcalc
+from ntkcalc._analysis.laziness import KERNEL_THRESHOLD
 from ntkcalc._workflows.drift import DEFAULT_THRESHOLD, Drift, drift
 
 RNG = np.random.default_rng(0)
@@ -60,6 +61,7 @@ def test_linear_model_kernel_does_not_move():
     assert np.nanmax(np.abs(result.distance_to_previous)) <= 1e-12
     assert np.max(result.relative_change) <= 1e-12
     assert result.lazy and result.verdict.startswith("lazy:")
+    assert DEFAULT_THRESHOLD == KERNEL_THRESHOLD
     assert f"threshold {DEFAULT_THRESHOLD:.0%}" in result.verdict
     # rank 4 kernel (3 inputs + bias) on 6 examples: singular, and the notes say so
     assert any("ill-conditioned" in note for note in result.notes)
@@ -107,8 +109,13 @@ def test_tanh_mlp_kernel_moves(moving_run):
     np.testing.assert_allclose(result.relative_change, rel, rtol=1e-9, atol=1e-15)
     assert result.distance_to_initial[-1] > 0.05 and result.relative_change[-1] > 0.3
     assert np.all(np.diff(result.distance_to_initial) > 0)  # it keeps moving away
-    assert not result.lazy and result.verdict.startswith("kernel moved:")
-    assert "moved during this run" in result.notes[0]
+    assert not result.lazy and result.verdict.startswith("not lazy (from step 5)")
+    assert result.notes[0].startswith("Not lazy")
+    # the one verdict, from the numbers above (ntkcalc.laziness)
+    assert result.laziness == ntkcalc.laziness(
+        relative_change=result.relative_change, distance=result.distance_to_initial,
+        steps=result.steps)
+    assert result.verdict == result.laziness.sentence and result.laziness.spread is None
     # centered alignment by its definition (HKH, HYYᵀH Frobenius cosine), at the last step
     h = np.eye(6) - 1 / 6
     a, b = h @ refs[-1] @ h, h @ Y @ Y.T @ h
@@ -133,13 +140,44 @@ def test_table_json_plot_and_repr(moving_run):
     assert {"eigenvalue_1", "eigenvalue_3", "alignment", "velocity"} <= set(table)
     loaded = json.loads(result.to_json())
     assert loaded["verdict"] == result.verdict and loaded["table"]["velocity"][0] is None
+    assert loaded["laziness"]["sentence"] == result.verdict
+    assert loaded["laziness"]["relative_change"] == pytest.approx(result.relative_change.max())
     np.testing.assert_allclose(loaded["table"]["distance_to_initial"], result.distance_to_initial)
     ax = result.plot()
     assert len(ax.get_lines()) == 4  # three curves and the threshold
     text = repr(result)
     assert text.startswith("Drift(4 steps 0..20, outputs='full', kernels(6, 6, 2, 2), lazy=False")
-    assert "verdict='kernel moved" in text and len(text) < 400
+    assert "verdict='not lazy" in text and len(text) < 600
     assert isinstance(result, Drift)
+
+
+def test_init_spread_and_integer_labels(moving_run):
+    # Independent initializations: the same module at PRNG keys 2 and 3. The spread is checked
+    # against its definition on dense jax.jacrev kernels (mean over pairs of
+    # ‖K_a − K_b‖_F / √(‖K_a‖_F ‖K_b‖_F) and 1 − cos); integer labels align as one-hot rows.
+    module, net, kept, path = moving_run
+    inits = [ntkcalc.Net.from_linen(module, f64(module.init(jax.random.key(k), X[:1])))
+             for k in (2, 3)]
+    labels = (X[:, 0] > 0).astype(np.int64) + (X[:, 1] > 0)  # classes 0, 1, 2
+    nets = [net.replace(params=p) for p in kept.values()]
+    result = drift(nets, X, labels, steps=list(kept), inits=inits)
+    onehot = drift(nets, X, np.eye(3)[labels], steps=list(kept))
+    np.testing.assert_allclose(result.alignment, onehot.alignment, rtol=1e-12)
+    refs = [reduce_mode(reference_full(n, X), "trace") for n in (nets[0], *inits)]
+    pairs = [(0, 1), (0, 2), (1, 2)]
+    change = np.mean([np.linalg.norm(refs[a] - refs[b]) / np.sqrt(
+        np.linalg.norm(refs[a]) * np.linalg.norm(refs[b])) for a, b in pairs])
+    dist = np.mean([_cosine_distance(refs[a], refs[b]) for a, b in pairs])
+    spread = result.laziness.spread
+    assert spread.count == 3
+    np.testing.assert_allclose([spread.relative_change, spread.distance], [change, dist],
+                               rtol=1e-9)
+    assert "between 3 independent initializations" in result.verdict
+    assert result.laziness.beyond_spread == (
+        result.relative_change.max() > max(DEFAULT_THRESHOLD, change)
+        or result.distance_to_initial.max() > max(DEFAULT_THRESHOLD, dist))
+    ax = result.plot()
+    assert len(ax.get_lines()) == 5  # three curves, the threshold and the init spread
 
 
 def test_bad_arguments(moving_run):
@@ -159,6 +197,8 @@ def test_bad_arguments(moving_run):
         drift(nets[:1], X, Y)
     with pytest.raises(TypeError, match="item 1 is a dict"):
         drift([net, {}], X, Y)
+    with pytest.raises(TypeError, match="`inits` must be a sequence of Nets"):
+        drift(nets, X, Y, inits=[net, "net"])
     with pytest.raises(ValueError, match="`module` is required with a checkpoint directory"):
         drift(path, X, Y)
     with pytest.raises(ValueError, match=r"`steps` \[7\] are not saved"):

@@ -9,10 +9,14 @@ The kernel K_t = Θ_t(X, X) on a fixed probe set X is computed at every saved st
 - centered kernel-target alignment with the probe labels, top eigenvalues and effective rank;
 - optionally the numerical rank of one layer's features (`feature_rank`).
 
-Verdict: the run is *lazy* when both the distance to the initial kernel and the relative change
-stay at or below ``threshold`` (default 5%) at every step; otherwise *the kernel moved*, and the
-verdict names the first step above the threshold. For a moved kernel, a kernel from any single
-step (the initial one in particular) does not describe the run: forecasts built on it will miss.
+Verdict: the one laziness verdict (`ntkcalc.laziness`): the run is *lazy* when both the distance
+to the initial kernel and the relative change stay at or below ``threshold`` (default 5%) at
+every step; otherwise it is not, and the verdict names the first step above the threshold. With
+``inits`` (Nets of the same architecture at independent initializations) the kernels at those
+initializations give the yardstick: how much the kernel differs by the random initialization
+alone, so that "the kernel moved" means moved beyond that. For a run that is not lazy, a kernel
+from any single step (the initial one in particular) does not describe the run: forecasts built
+on it will miss.
 """
 
 from __future__ import annotations
@@ -27,19 +31,24 @@ import numpy as np
 
 from .._adapters.checkpoint import checkpoint_steps, load_checkpoint
 from .._adapters.net import Net
+from .._analysis import _checks
 from .._analysis._checks import COND_WARN
 from .._analysis._result import Result
 from .._analysis.alignment import alignment, kernel_distance
 from .._analysis.expressivity import feature_rank
+from .._analysis.laziness import KERNEL_THRESHOLD, Laziness, init_spread, laziness
+from .._analysis.laziness import relative_change as _relative_change
 from .._analysis.spectrum import spectrum
 from .._engine.options import OUTPUTS, Outputs, check_choice
 from .._kernel import ntk
 
-DEFAULT_THRESHOLD = 0.05
+#: The laziness threshold on distance and relative change: `laziness.KERNEL_THRESHOLD`.
+DEFAULT_THRESHOLD = KERNEL_THRESHOLD
 
 MOVED_NOTE = (
-    "The kernel moved during this run: a kernel taken at one step (the initial one in particular) "
-    "does not describe the training dynamics, and forecasts built on it will be off."
+    "Not lazy: the kernel changed during this run by more than the threshold, so a kernel taken "
+    "at one step (the initial one in particular) does not describe the training dynamics, and "
+    "forecasts built on it will be off."
 )
 ILL_NOTE = (
     "The kernel is ill-conditioned at steps {steps} (condition number up to {cond:.2g}): its "
@@ -57,7 +66,8 @@ class Drift(Result):
         distance_to_previous: (T,) ``1 − cos(K_t, K_{t-1})``; NaN at the first step.
         velocity: (T,) ``distance_to_previous / (steps[t] − steps[t-1])``; NaN at the first step.
         relative_change: (T,) ``‖K_t − K_0‖_F / ‖K_0‖_F``.
-        alignment: (T,) centered kernel-target alignment with the probe labels.
+        alignment: (T,) centered kernel-target alignment with the probe labels (integer labels
+            as one-hot rows).
         top_eigenvalues: (T, k) the k largest eigenvalues, descending.
         effective_rank: (T,) exp of the entropy of the normalized eigenvalues.
         condition_number: (T,) ``λ_max / λ_min`` (inf for a singular kernel).
@@ -65,9 +75,11 @@ class Drift(Result):
         kernels: (T, N, N) or (T, N, N, O[, O]): the kernel at each step.
         outputs: the outputs mode of the kernels.
         threshold: the laziness threshold on distance and relative change.
-        lazy: whether both stayed <= threshold at every step.
-        verdict: one line saying so, with the numbers.
+        lazy: whether both stayed <= threshold at every step (``laziness.lazy``).
+        verdict: one line saying so, with the numbers (``laziness.sentence``).
         notes: cautions (a moved kernel, ill-conditioned kernels).
+        laziness: the verdict (`ntkcalc.laziness`) with its criteria, thresholds and the init
+            spread (``laziness.spread``, None without ``inits``).
     """
 
     steps: np.ndarray
@@ -86,6 +98,7 @@ class Drift(Result):
     lazy: bool
     verdict: str
     notes: tuple[str, ...]
+    laziness: Laziness
 
     _COLUMNS = ("steps", "distance_to_initial", "distance_to_previous", "velocity",
                 "relative_change", "alignment", "effective_rank", "condition_number")
@@ -108,12 +121,14 @@ class Drift(Result):
         return table
 
     def to_json(self, *, indent: int | None = None) -> str:
-        """The table plus verdict, threshold, outputs and notes as JSON (NaN and inf → null)."""
+        """The table plus verdict, threshold, outputs, notes and the laziness criteria (with the
+        init spread) as JSON (NaN and inf → null)."""
         finite = lambda v: v.item() if np.isfinite(v) else None
         table = {k: [finite(v) for v in col] for k, col in self.to_dict().items()}
         return json.dumps({
             "verdict": self.verdict, "lazy": bool(self.lazy), "threshold": self.threshold,
-            "outputs": self.outputs, "notes": list(self.notes), "table": table,
+            "outputs": self.outputs, "notes": list(self.notes),
+            "laziness": self.laziness.to_dict(), "table": table,
         }, indent=indent)
 
     def plot(self, ax=None):
@@ -130,9 +145,13 @@ class Drift(Result):
         ax.plot(self.steps, self.relative_change, ls="--", label="relative change ‖K−K₀‖/‖K₀‖")
         ax.axhline(self.threshold, color="gray", lw=0.8, ls=":",
                    label=f"threshold {self.threshold:.0%}")
+        spread = self.laziness.spread
+        if spread is not None:
+            ax.axhline(spread.relative_change, color="gray", lw=0.8, ls="-.",
+                       label=f"relative change between {spread.count} inits")
         ax.set_xlabel("training step")
         ax.set_ylabel("kernel change")
-        ax.set_title("lazy" if self.lazy else "kernel moved", fontsize="medium")
+        ax.set_title("lazy" if self.lazy else "not lazy", fontsize="medium")
         ax.legend(fontsize="small")
         return ax
 
@@ -199,9 +218,13 @@ def _square(k: np.ndarray, outputs: str) -> np.ndarray:
 
 
 def _targets(y: np.ndarray, outputs: str, kernel: np.ndarray) -> np.ndarray:
-    if outputs in ("full", "diagonal"):
+    """Labels for the alignment, by the label convention (1-D integers → one-hot rows)."""
+    per_output = outputs in ("full", "diagonal")
+    y = _checks.targets("y", y, n=kernel.shape[0], kname="x", kshape=kernel.shape,
+                        num_classes=kernel.shape[2] if per_output else None)
+    if per_output:
         o = kernel.shape[2]
-        if y.ndim != 2 or y.shape[1] != o:
+        if y.shape[1] != o:
             raise ValueError(
                 f"`y` is {y.shape}; with outputs={outputs!r} the labels must be (N, {o}), one "
                 "column per model output (e.g. one-hot rows)."
@@ -234,6 +257,7 @@ def drift(
     top: int = 5,
     layer: str | None = None,
     threshold: float = DEFAULT_THRESHOLD,
+    inits: Sequence[Net] | None = None,
     progress: bool = False,
 ) -> Drift:
     """The kernel on a probe set at every step of a training run, and how far it moved.
@@ -243,7 +267,8 @@ def drift(
             optionally ``example``/``variables``, ``item``, ``subtree`` as in `load_checkpoint`),
             or a sequence of at least two Nets in training order.
         x: (N, ...) probe inputs, the same at every step.
-        y: (N,) or (N, O) probe labels (±1 or real targets, or one-hot rows), for the alignment.
+        y: (N,) or (N, O) probe targets for the alignment: real targets, one-hot rows, or a 1-D
+            integer array of class labels (read as one-hot rows, the label convention).
         steps: step numbers: for Nets one per Net (default 0, 1, ...); for a directory the steps
             to use (default all saved).
         outputs: the kernel's outputs mode (`ntk`); ``"full"`` and ``"diagonal"`` are compared as
@@ -252,7 +277,10 @@ def drift(
         top: how many top eigenvalues to keep per step.
         layer: a layer name for the feature-rank check (`feature_rank`), or None to skip it.
         threshold: the laziness threshold in (0, 1) on the distance to the initial kernel and
-            the relative change (default 0.05).
+            the relative change (default 0.05, `laziness.KERNEL_THRESHOLD`).
+        inits: Nets of the same architecture at independent random initializations (say 2–4);
+            their kernels and the run's first one give the init spread, the yardstick of the
+            verdict (`init_spread`). Costs one kernel per Net.
         progress: pass ``progress`` to `ntk` for each kernel.
 
     Returns:
@@ -291,6 +319,13 @@ def drift(
         step_arr = _step_numbers(steps, len(nets))
     if len(step_arr) < 2:
         raise ValueError(f"drift needs at least 2 steps, got {len(step_arr)}.")
+    inits = [] if inits is None else [inits] if isinstance(inits, Net) else list(inits)
+    bad = [i for i, n in enumerate(inits) if not isinstance(n, Net)]
+    if bad:
+        raise TypeError(
+            "`inits` must be a sequence of Nets at independent initializations; item "
+            f"{bad[0]} is a {type(inits[bad[0]]).__name__}."
+        )
 
     options = dict(method=method, outputs=outputs, params=params, memory=memory,
                    **_kernel_options(progress))
@@ -304,35 +339,26 @@ def drift(
         aligns.append(alignment(squares[-1], _targets(y, outputs, k), centered=True))
         if layer is not None:
             ranks.append(feature_rank(net, x, layer=layer).rank)
+    spread = None
+    if inits:
+        spread = init_spread([squares[0], *(_square(np.asarray(ntk(n, x, **options)), outputs)
+                                            for n in inits)])
     return _summarize(step_arr, kernels, squares, specs, aligns, ranks if layer else None,
-                      outputs=outputs, threshold=float(threshold))
+                      outputs=outputs, threshold=float(threshold), spread=spread)
 
 
-def _summarize(steps, kernels, squares, specs, aligns, ranks, *, outputs, threshold) -> Drift:
+def _summarize(steps, kernels, squares, specs, aligns, ranks, *, outputs, threshold,
+               spread) -> Drift:
     k0 = squares[0]
     to_initial = np.array([kernel_distance(k, k0) for k in squares])
     to_initial[0] = 0.0
     to_previous = np.array([np.nan] + [kernel_distance(b, a) for a, b in zip(squares, squares[1:])])
     velocity = to_previous / np.concatenate([[np.nan], np.diff(steps)])
-    relative = np.array([np.linalg.norm(k - k0) / np.linalg.norm(k0) for k in squares])
+    relative = np.array([_relative_change(k, k0) for k in squares])
     cond = np.array([s.condition_number for s in specs])
-    worst = np.maximum(to_initial, relative)
-    lazy = bool(np.all(worst <= threshold))
-    peak = int(np.argmax(to_initial))
-    if lazy:
-        verdict = (
-            f"lazy: distance to the initial kernel at most {to_initial[peak]:.2%} (step "
-            f"{steps[peak]}), relative change at most {relative.max():.2%}, both <= threshold "
-            f"{threshold:.0%}"
-        )
-    else:
-        first = int(np.argmax(worst > threshold))
-        fast = int(np.nanargmax(velocity))
-        verdict = (
-            f"kernel moved: above threshold {threshold:.0%} from step {steps[first]}; final "
-            f"distance to the initial kernel {to_initial[-1]:.2%}, relative change "
-            f"{relative[-1]:.2%}; fastest between steps {steps[fast - 1]} and {steps[fast]}"
-        )
+    verdict = laziness(relative_change=relative, distance=to_initial, steps=steps, spread=spread,
+                       kernel_threshold=threshold)
+    lazy = verdict.lazy
     notes = [] if lazy else [MOVED_NOTE]
     ill = cond > COND_WARN
     if np.any(ill):
@@ -344,5 +370,5 @@ def _summarize(steps, kernels, squares, specs, aligns, ranks, *, outputs, thresh
         effective_rank=np.array([s.effective_rank for s in specs]), condition_number=cond,
         feature_rank=None if ranks is None else np.array(ranks),
         kernels=np.stack(kernels), outputs=outputs, threshold=threshold, lazy=lazy,
-        verdict=verdict, notes=tuple(notes),
+        verdict=verdict.sentence, notes=tuple(notes), laziness=verdict,
     )
