@@ -46,12 +46,13 @@ def test_report_has_every_section(demo):
                                     "feature-rank", "setup"}
     for key in ("eigenvalues", "decay_exponent", "condition_number"):
         assert key in doc["sections"]["spectrum"]
-    for key in ("gcv", "kare", "loo", "heldout", "chosen_ridge", "heldout_at_chosen"):
+    for key in ("gcv", "kare", "loo", "heldout", "chosen_ridge", "heldout_at_chosen",
+                "chosen_by", "loo_over_gcv"):
         assert key in doc["sections"]["risk"]
-    for key in ("observed_train_loss", "forecast_train_loss", "observed_test_loss",
-                "forecast_test_loss", "largest_gap"):
+    for key in ("observed_train_mse", "forecast_train_mse", "observed_test_mse",
+                "forecast_test_mse", "train_gap", "test_gap", "largest_train_gap"):
         assert key in doc["sections"]["forecast"]
-    for key in ("kernel_distance", "alignment", "steps"):
+    for key in ("kernel_distance", "relative_change", "alignment", "steps", "init_spread"):
         assert key in doc["sections"]["drift"]
     ranks = doc["sections"]["feature-rank"]["checkpoints"]
     assert all("margin" in r for r in ranks.values())
@@ -69,8 +70,29 @@ def test_summary_is_five_lines_and_matches_the_result(demo):
     assert demo.heldout_error == risk["heldout_at_chosen"]
     assert f"{demo.heldout_error:.4f}" in demo.summary[3]
     for field in ("lr", "forecast_gap", "train_loss", "test_loss", "kernel_distance",
-                  "gcv_error", "heldout_accuracy", "seconds"):
+                  "relative_change", "gcv_error", "heldout_accuracy", "seconds"):
         assert math.isfinite(getattr(demo, field)), field
+
+
+def test_one_verdict_everywhere(demo):
+    """The verdict is the laziness of the drift numbers and the forecast gap (ntkcalc.laziness),
+    recomputed here from report.json; summary, cautions and sections say the same."""
+    import ntkcalc
+
+    doc = _json(demo.report_json)
+    dr, fc = doc["sections"]["drift"], doc["sections"]["forecast"]
+    spread = ntkcalc.InitSpread(**dr["init_spread"])
+    again = ntkcalc.laziness(relative_change=dr["relative_change"],
+                             distance=dr["kernel_distance"], steps=dr["steps"],
+                             forecast_gap=fc["train_gap"], gap_steps=fc["steps"], spread=spread)
+    assert again.sentence == demo.verdict == doc["verdict"]["sentence"]
+    assert again.lazy == demo.lazy
+    assert demo.verdict in demo.summary[1]
+    assert dr["verdict"] == fc["verdict"] == demo.verdict
+    assert any(demo.verdict in c for c in demo.cautions) == (not demo.lazy)
+    assert spread.count == 3 and spread.relative_change > 0
+    # the train gap at step 0 is 0: the linearized and the real network start as one function
+    assert fc["train_gap"][0] < 1e-12 and fc["largest_train_gap"] == max(fc["train_gap"])
 
 
 def test_checkpoints_saved_and_restored(demo):
@@ -88,10 +110,9 @@ def test_forecast_starts_where_training_starts(demo):
     """At step 0 the linearized and the real network are the same function."""
     fc = _json(demo.report_json)["sections"]["forecast"]
     assert fc["steps"][0] == 0
-    assert fc["forecast_train_loss"][0] == pytest.approx(fc["observed_train_loss"][0], rel=1e-12)
-    assert fc["forecast_test_loss"][0] == pytest.approx(fc["observed_test_loss"][0], rel=1e-12)
-    assert fc["lazy"] == (fc["largest_gap"] <= fc["tolerance"])
-    assert ("Not lazy" in " ".join(demo.cautions)) == (not fc["lazy"])
+    assert fc["forecast_train_mse"][0] == pytest.approx(fc["observed_train_mse"][0], rel=1e-12)
+    assert fc["forecast_test_mse"][0] == pytest.approx(fc["observed_test_mse"][0], rel=1e-12)
+    assert ("Not lazy" in " ".join(demo.cautions)) == (not demo.lazy)
 
 
 def test_gcv_at_the_chosen_ridge_matches_a_scikit_learn_refit(demo):

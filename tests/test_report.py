@@ -30,6 +30,7 @@ def _kernel(n, *, cond=10.0, seed=0):
 def _results(n=30, steps=(0, 10, 100), ridges=7, **changes):
     record = list(range(0, 101, 10))
     loss = np.geomspace(1.0, 0.1, len(record)).tolist()
+    gap = np.linspace(0.0, 0.02, len(record)).tolist()
     grid = np.logspace(-3, 1, ridges).tolist()
     curve = np.linspace(0.3, 0.2, ridges).tolist()
     rank = {"num_examples": n, "num_features": 9, "rank": 9, "full_rank": False,
@@ -39,17 +40,25 @@ def _results(n=30, steps=(0, 10, 100), ridges=7, **changes):
         "data": {"scenario": "test", "n_train": n, "n_test": 5, "features": ["u", "v"],
                  "units": ["m", "s"], "class_names": CLASSES, "train_counts": [10, 10, 10]},
         "model": {"architecture": "MLP 2→8→3", "parameters": 51, "width": 8, "depth": 1},
-        "training": {"loss": "mse", "optimizer": "sgd", "lr": 0.5, "max_stable_lr": 1.0,
+        "training": {"loss": "L = (1/N) Σ ½‖f − y‖², O/2 times the MSE", "optimizer": "sgd", "lr": 0.5, "max_stable_lr": 1.0,
                      "steps": 100, "checkpoint_steps": list(steps), "parameter_change": 0.01},
-        "forecast": {"steps": record, "largest_gap": 0.02, "tolerance": 0.1, "lazy": True,
+        "laziness": {"lazy": True, "sentence": "lazy: the numbers", "relative_change": 0.03,
+                     "distance": 0.02, "forecast_gap": 0.02, "failed": [], "first_step": None,
+                     "spread": {"relative_change": 0.04, "distance": 0.01, "count": 3},
+                     "kernel_threshold": 0.05, "gap_threshold": 0.1, "beyond_spread": False},
+        "forecast": {"steps": record, "train_gap": gap, "test_gap": gap, "tolerance": 0.1,
+                     "largest_train_gap": 0.02, "largest_test_gap": 0.02,
                      **{f"{a}_{b}_{c}": loss for a in ("observed", "forecast")
-                        for b in ("train", "test") for c in ("loss", "accuracy")}},
+                        for b in ("train", "test") for c in ("mse", "accuracy")}},
         "drift": {"steps": list(steps), "kernel_distance": [0.0, 0.01, 0.02],
-                  "alignment": [0.3, 0.31, 0.33]},
+                  "relative_change": [0.0, 0.02, 0.03], "alignment": [0.3, 0.31, 0.33],
+                  "threshold": 0.05,
+                  "init_spread": {"relative_change": 0.04, "distance": 0.01, "count": 3}},
         "risk": {"ridges": grid, "gcv": curve, "kare": curve, "loo": curve, "heldout": curve,
                  "heldout_accuracy": [0.8] * ridges, "best": {"gcv": grid[3], "kare": grid[3],
                                                              "loo": grid[3]},
-                 "chosen_ridge": grid[3], "gcv_at_chosen": curve[3],
+                 "chosen_ridge": grid[3], "chosen_by": "gcv", "estimators_agree": True,
+                 "loo_over_gcv": 1.0, "loo_at_chosen": curve[3], "gcv_at_chosen": curve[3],
                  "heldout_at_chosen": curve[3], "heldout_accuracy_at_chosen": 0.8,
                  "final_kernel_heldout": 0.2, "final_kernel_heldout_accuracy": 0.85},
         "feature_rank": {"layer": "hidden_0", "width": 8,
@@ -138,7 +147,7 @@ def test_block_means_by_class(tmp_path):
 @pytest.mark.parametrize(
     ("changes", "cond", "phrase"),
     [
-        ({"forecast__lazy": False, "forecast__largest_gap": 0.4}, 10.0, "Not lazy"),
+        ({"laziness__lazy": False, "laziness__sentence": "not lazy: 40%"}, 10.0, "Not lazy"),
         ({}, 1e14, "ill-conditioned"),
         ({"dtype": "float32"}, 10.0, "float32"),
         ({"cautions": ["Something the analysis warned about."]}, 10.0, "analysis warned"),
@@ -207,3 +216,41 @@ def test_kernel_store_gets_spectrum_and_heatmap(tmp_path):
                                np.linalg.eigvalsh(k)[::-1], rtol=1e-10, atol=1e-12)
     assert all(math.isfinite(v) for v in numbers_in(doc))
     assert ("ill-conditioned" in " ".join(doc["cautions"])) == (np.linalg.cond(k) > 1e12)
+
+
+def _shown_numbers(text: str):
+    """Decimal numbers and percentages as shown (value, unit of the last digit)."""
+    for m in re.finditer(r"(?<![\w.])(-?\d+\.\d+)(e[-+]?\d+)?(%?)", text):
+        digits, exp, pct = m.groups()
+        step = 10.0 ** -len(digits.split(".")[1]) * (10.0 ** int(exp[1:]) if exp else 1.0)
+        value = float(digits + (exp or ""))
+        yield (value / 100, step / 100) if pct else (value, step)
+
+
+def test_one_verdict_and_every_shown_number_in_json(tmp_path):
+    # A run that is not lazy: the verdict sentence is the same in the summary, the cautions, the
+    # drift and forecast sections; every decimal number the page shows is in report.json (up to
+    # the rounding it is shown with); every error label names the one convention (MSE).
+    sentence = "not lazy (from step 10): kernel relative change up to 6.71% (threshold 5%)"
+    results = _results(laziness__lazy=False, laziness__sentence=sentence,
+                       laziness__relative_change=0.0671, laziness__failed=["relative_change"],
+                       drift__relative_change=[0.0, 0.0671, 0.05])
+    html_path, json_path = write_report(_write_run(tmp_path / "run", results))
+    doc = json.loads(_text(json_path))
+    assert doc["verdict"]["sentence"] == sentence and doc["verdict"]["lazy"] is False
+    assert sentence in doc["summary"][1]
+    assert sum(sentence in c for c in doc["cautions"]) == 1
+    assert doc["sections"]["drift"]["verdict"] == sentence
+    assert doc["sections"]["forecast"]["verdict"] == sentence
+    page = _text(html_path)
+    assert "the run is lazy" not in page  # the no-cautions text cannot contradict the verdict
+    known = list(numbers_in(doc))
+    cells = re.findall(r'<td class="num">([^<]*)</td>', page) + doc["summary"]
+    for cell in cells:
+        for value, step in _shown_numbers(html.unescape(cell)):
+            assert any(abs(v - value) <= 0.51 * step + 1e-12 for v in known), (cell, value)
+    rows = re.findall(r'<tr><th>([^<]*)</th><td class="num">([^<]*)</td></tr>', page)
+    for label, value in rows:
+        if "error" in label or "loss" in label:
+            assert "MSE" in label or "MSE" in value, label
+    assert page.count("MSE: mean over examples and outputs of (f − y)²") >= 3

@@ -10,8 +10,10 @@ Steps, each with ntkcalc:
    orbax checkpoints at several steps;
 4. the kernel at initialization (``outputs="full"`` on train and test-vs-train) and at each
    checkpoint (``outputs="trace"`` on train, restored from orbax);
-5. the lazy-training forecast from the initial kernel against the actual curves, the GCV/KARE/LOO
-   risk of kernel ridge against its held-out error, kernel drift and label alignment over steps;
+5. the lazy-training forecast from the initial kernel against the actual outputs, the GCV/KARE/LOO
+   risk of kernel ridge against its held-out error, kernel drift (with the spread between two more
+   independent initializations as yardstick) and label alignment over steps; one laziness
+   verdict (`ntkcalc.laziness`) from the kernel's change and the forecast gap on outputs;
 6. results saved as ``results.json`` and ``arrays.npz``, then `write_report`.
 """
 
@@ -36,6 +38,7 @@ import orbax.checkpoint as ocp
 from .._adapters.net import Net
 from .._analysis import feature_rank, forecast, ridge_fit, risk
 from .._analysis._result import Result
+from .._analysis.laziness import laziness, output_gap
 from .._kernel import ntk
 from .data import pump_readings
 from .drift import drift
@@ -43,8 +46,8 @@ from .report import ARRAYS, RESULTS, write_report
 
 Scale = Literal["full", "small"]
 
-#: Relative gap between the observed and forecast training loss above which a run is not lazy.
-LAZY_TOLERANCE = 0.1
+#: PRNG keys of the independent initializations whose kernels give the init spread.
+SPREAD_KEYS = (1, 2)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -78,14 +81,18 @@ class DemoResult(Result):
         cautions: where a number may mislead (non-lazy run, conditioning, precision).
         seconds: wall time of the whole run.
         lr: learning rate used; steps: gradient steps.
-        forecast_gap: largest relative gap between the observed and forecast training loss.
-        train_loss, forecast_train_loss: final training loss, observed and forecast.
-        test_loss, forecast_test_loss: final test loss (same convention), observed and forecast.
+        lazy: the laziness verdict; verdict: its sentence (the report's, word for word).
+        forecast_gap: largest gap between the observed and forecast training outputs, relative
+            to the initial residual ‖f_0 − y‖.
+        train_loss, forecast_train_loss: final training MSE (mean over examples and outputs of
+            (f − y)², the report's one convention), observed and forecast.
+        test_loss, forecast_test_loss: final test MSE, observed and forecast.
         kernel_distance: distance of the last checkpoint's kernel to the initial one.
+        relative_change: ‖K_T − K_0‖/‖K_0‖ at the last checkpoint.
         alignment_init, alignment_final: centered kernel-label alignment, first and last kernel.
-        gcv_ridge: ridge chosen by GCV; gcv_error: its GCV estimate (mean squared error per
-            output); heldout_error: kernel ridge mean squared error on the test set at that ridge;
-            heldout_accuracy: its test accuracy.
+        gcv_ridge: the ridge chosen for kernel ridge (GCV's, or LOO's when they disagree);
+            gcv_error: GCV's estimate there (MSE); heldout_error: kernel ridge MSE on the test
+            set at that ridge; heldout_accuracy: its test accuracy.
     """
 
     out_dir: str
@@ -96,12 +103,15 @@ class DemoResult(Result):
     seconds: float
     lr: float
     steps: int
+    lazy: bool
+    verdict: str
     forecast_gap: float
     train_loss: float
     forecast_train_loss: float
     test_loss: float
     forecast_test_loss: float
     kernel_distance: float
+    relative_change: float
     alignment_init: float
     alignment_final: float
     gcv_ridge: float
@@ -141,8 +151,14 @@ class _Mlp(nn.Module):
 
 
 def _mse(f, y):
-    """``(1/N) Σ_i ½‖f_i − y_i‖²``."""
+    """``(1/N) Σ_i ½‖f_i − y_i‖²``, the training loss (the convention of `forecast`)."""
     return 0.5 * jnp.sum((f - y) ** 2) / f.shape[0]
+
+
+def _mse_per_output(f, y) -> np.ndarray:
+    """The report's one convention: mean over examples and outputs of ``(f − y)²``, per step
+    for (T, N, O) outputs."""
+    return np.mean((np.asarray(f) - np.asarray(y)) ** 2, axis=(-2, -1))
 
 
 def _accuracy(f, labels) -> float:
@@ -156,13 +172,15 @@ def _record_steps(steps: int, points: int, extra) -> np.ndarray:
 
 
 def _train(net: Net, train, test, *, lr: float, steps: int, record, save_at, manager):
-    """Full-batch gradient descent; losses and accuracies at ``record``, checkpoints at ``save_at``.
+    """Full-batch gradient descent; outputs and accuracies at ``record``, checkpoints at
+    ``save_at``.
 
-    Returns ``(curves, params)``: curves maps train_loss, test_loss, train_accuracy and
-    test_accuracy to (T,) arrays over ``record``; params are the final parameters.
+    Returns ``(curves, params)``: curves maps train_outputs and test_outputs to (T, N, O) and
+    (T, M, O) arrays, train_accuracy and test_accuracy to (T,) arrays over ``record``; params are
+    the final parameters.
     """
     x, y = jnp.asarray(train.x), jnp.asarray(train.one_hot)
-    xt, yt = jnp.asarray(test.x), jnp.asarray(test.one_hot)
+    xt = jnp.asarray(test.x)
     opt = optax.sgd(lr)
 
     @jax.jit
@@ -174,14 +192,15 @@ def _train(net: Net, train, test, *, lr: float, steps: int, record, save_at, man
     evaluate = jax.jit(lambda p: (net.apply(p, x), net.apply(p, xt)))
     params, opt_state = net.params, opt.init(net.params)
     record, save_at = set(record.tolist()), set(save_at.tolist())
-    curves = {k: [] for k in ("train_loss", "test_loss", "train_accuracy", "test_accuracy")}
+    curves = {k: [] for k in ("train_outputs", "test_outputs", "train_accuracy",
+                              "test_accuracy")}
     for t in range(steps + 1):
         if t in save_at:
             manager.save(t, args=ocp.args.StandardSave(params))
         if t in record:
             f, ft = evaluate(params)
-            curves["train_loss"].append(float(_mse(f, y)))
-            curves["test_loss"].append(float(_mse(ft, yt)))
+            curves["train_outputs"].append(np.asarray(f))
+            curves["test_outputs"].append(np.asarray(ft))
             curves["train_accuracy"].append(_accuracy(f, train.labels))
             curves["test_accuracy"].append(_accuracy(ft, test.labels))
         if t < steps:
@@ -261,13 +280,16 @@ def run_demo(out_dir, *, scale: Scale = "full", progress: bool = True) -> DemoRe
     seconds = time.perf_counter() - start
     summary = tuple(report["summary"])
     fc, dr, rk = results["forecast"], results["drift"], results["risk"]
+    verdict = results["laziness"]
     return DemoResult(
         out_dir=path, report_html=html, report_json=report_json, summary=summary,
         cautions=tuple(report["cautions"]), seconds=seconds, lr=results["training"]["lr"],
-        steps=results["training"]["steps"], forecast_gap=fc["largest_gap"],
-        train_loss=fc["observed_train_loss"][-1], forecast_train_loss=fc["forecast_train_loss"][-1],
-        test_loss=fc["observed_test_loss"][-1], forecast_test_loss=fc["forecast_test_loss"][-1],
-        kernel_distance=dr["kernel_distance"][-1], alignment_init=dr["alignment"][0],
+        steps=results["training"]["steps"], lazy=verdict["lazy"], verdict=verdict["sentence"],
+        forecast_gap=fc["largest_train_gap"],
+        train_loss=fc["observed_train_mse"][-1], forecast_train_loss=fc["forecast_train_mse"][-1],
+        test_loss=fc["observed_test_mse"][-1], forecast_test_loss=fc["forecast_test_mse"][-1],
+        kernel_distance=dr["kernel_distance"][-1], relative_change=dr["relative_change"][-1],
+        alignment_init=dr["alignment"][0],
         alignment_final=dr["alignment"][-1], gcv_ridge=rk["chosen_ridge"],
         gcv_error=rk["gcv_at_chosen"], heldout_error=rk["heldout_at_chosen"],
         heldout_accuracy=rk["heldout_accuracy_at_chosen"],
@@ -306,18 +328,27 @@ def _analyse(path: str, cfg: _Setting, *, progress: bool) -> tuple[dict, _Cautio
     with ocp.CheckpointManager(os.path.join(path, "checkpoints"), options=options) as manager:
         curves, final_params = _train(net, train, test, lr=lr, steps=cfg.steps, record=record,
                                       save_at=save_at, manager=manager)
-    _say(progress, "kernels at the checkpoints")
-    dr = drift(os.path.join(path, "checkpoints"), train.x, y, module=model,
-               variables=variables, steps=save_at.tolist())
+    _say(progress, "kernels at the checkpoints and at independent initializations")
+    inits = [Net.from_linen(model, model.init(jax.random.key(k), train.x[:1]))
+             for k in SPREAD_KEYS]
+    dr = drift(os.path.join(path, "checkpoints"), train.x, train.labels, module=model,
+               variables=variables, steps=save_at.tolist(), inits=inits)
     kernels = list(dr.kernels)
     final = net.replace(params=final_params)
 
     _say(progress, "forecast, risk estimates, drift, alignment, feature rank")
     with cautions.watch():
-        fc = forecast(k0_full, y, np.asarray(net(train.x)), lr=lr, steps=record,
-                      k_test_train=k0x_full, f0_test=np.asarray(net(test.x)), y_test=yt)
-        # the report words the non-lazy caution itself (with the drift numbers): no warning here
-        gap = fc.departure(curves["train_loss"], tolerance=np.inf)
+        # the exact (N, N, O, O) kernel: the model is small enough, so no K ⊗ I_O assumption
+        fc = forecast(k0_full, y, curves["train_outputs"][0], lr=lr, steps=record,
+                      k_test_train=k0x_full, f0_test=curves["test_outputs"][0], y_test=yt)
+        # the gap on outputs relative to the initial residual, the verdict's own definition
+        gaps = {part: output_gap(curves[f"{part}_outputs"], getattr(fc, f"{part}_outputs"),
+                                 scale=float(np.linalg.norm(curves[f"{part}_outputs"][0] - t)),
+                                 steps=record)
+                for part, t in (("train", y), ("test", yt))}
+        verdict = laziness(relative_change=dr.relative_change, distance=dr.distance_to_initial,
+                           steps=dr.steps, forecast_gap=gaps["train"], gap_steps=record,
+                           spread=dr.laziness.spread)
         k_final_x = ntk(final, test.x, train.x, progress=False)
         risk_part = _risk_part(k0, k0x, kernels[-1], k_final_x, train, test, cfg)
         ranks = {"initialization": feature_rank(net, train.x, layer=f"hidden_{cfg.depth - 1}"),
@@ -338,23 +369,34 @@ def _analyse(path: str, cfg: _Setting, *, progress: bool) -> tuple[dict, _Cautio
         "model": {"architecture": f"MLP {arch}, tanh, NTK parameterization",
                   "parameters": net.num_params, "width": cfg.width, "depth": cfg.depth},
         "training": {
-            "loss": "L = (1/N) Σ_i ½‖f(x_i) − y_i‖², one-hot y",
+            "loss": "trained on L = (1/N) Σ_i ½‖f(x_i) − y_i‖² (one-hot y), which is O/2 times "
+                    "the MSE every number of the report is in",
             "optimizer": "optax.sgd, full batch", "lr": lr, "max_stable_lr": fc.max_stable_lr,
             "steps": cfg.steps, "checkpoint_steps": save_at.tolist(),
             "parameter_change": _relative_change(net.params, final_params),
         },
+        "laziness": verdict.to_dict(),
         "forecast": {
-            "steps": record.tolist(), "largest_gap": gap, "tolerance": LAZY_TOLERANCE,
-            "lazy": bool(gap <= LAZY_TOLERANCE),
-            **{f"observed_{k}": v.tolist() for k, v in curves.items()},
-            **{f"forecast_{k}": getattr(fc, k).tolist() for k in curves},
+            "steps": record.tolist(), "tolerance": verdict.gap_threshold,
+            "train_gap": gaps["train"].tolist(), "test_gap": gaps["test"].tolist(),
+            "largest_train_gap": float(gaps["train"].max()),
+            "largest_test_gap": float(gaps["test"].max()),
+            **{f"observed_{part}_mse": _mse_per_output(curves[f"{part}_outputs"], t).tolist()
+               for part, t in (("train", y), ("test", yt))},
+            **{f"forecast_{part}_mse": _mse_per_output(getattr(fc, f"{part}_outputs"), t).tolist()
+               for part, t in (("train", y), ("test", yt))},
+            **{f"observed_{k}": np.asarray(curves[k]).tolist()
+               for k in ("train_accuracy", "test_accuracy")},
+            **{f"forecast_{k}": getattr(fc, k).tolist()
+               for k in ("train_accuracy", "test_accuracy")},
         },
         "drift": {
             "steps": dr.steps.tolist(),
             "kernel_distance": dr.distance_to_initial.tolist(),
             "relative_change": dr.relative_change.tolist(),
             "alignment": dr.alignment.tolist(),
-            "verdict": dr.verdict,
+            "threshold": dr.threshold,
+            "init_spread": dataclasses.asdict(dr.laziness.spread),
         },
         "risk": risk_part,
         "feature_rank": {"layer": f"hidden_{cfg.depth - 1}", "width": cfg.width,
@@ -376,7 +418,8 @@ def _relative_change(before, after) -> float:
 
 
 def _risk_part(k0, k0x, k_final, k_final_x, train, test, cfg: _Setting) -> dict:
-    """GCV/KARE/LOO over a ridge grid against the held-out error of kernel ridge on ``k0``."""
+    """GCV/KARE/LOO over a ridge grid against the held-out error of kernel ridge on ``k0``; all
+    errors are MSE (mean over examples and outputs of (f − y)²)."""
     y, yt = train.one_hot, test.one_hot
     scale = float(np.mean(np.diag(k0)))
     ridges = scale * np.logspace(-6, 2, cfg.ridges)
@@ -384,7 +427,7 @@ def _risk_part(k0, k0x, k_final, k_final_x, train, test, cfg: _Setting) -> dict:
     pred = ridge_fit(k0, y, ridge=ridges, k_test_train=k0x).test_predictions  # (R, M, O)
     held = np.mean((pred - yt[None]) ** 2, axis=(1, 2))
     acc = np.mean(np.argmax(pred, axis=2) == test.labels[None], axis=1)
-    chosen = est.best["gcv"]
+    chosen = est.recommended  # GCV's ridge, or LOO's when the two disagree (risk warns then)
     i = int(np.flatnonzero(ridges == chosen)[0])
     # the same ridge relative to the kernel's scale, on the kernel of the trained network
     moved = ridge_fit(k_final, y, ridge=chosen * float(np.mean(np.diag(k_final))) / scale,
@@ -392,7 +435,9 @@ def _risk_part(k0, k0x, k_final, k_final_x, train, test, cfg: _Setting) -> dict:
     return {
         "ridges": ridges.tolist(), "gcv": est.gcv.tolist(), "kare": est.kare.tolist(),
         "loo": est.loo.tolist(), "heldout": held.tolist(), "heldout_accuracy": acc.tolist(),
-        "best": dict(est.best), "chosen_ridge": float(chosen), "gcv_at_chosen": float(est.gcv[i]),
+        "best": dict(est.best), "chosen_ridge": float(chosen), "chosen_by": est.recommended_by,
+        "estimators_agree": est.agree, "loo_over_gcv": est.ratio,
+        "gcv_at_chosen": float(est.gcv[i]), "loo_at_chosen": float(est.loo[i]),
         "heldout_at_chosen": float(held[i]), "heldout_accuracy_at_chosen": float(acc[i]),
         "final_kernel_heldout": float(np.mean((moved - yt) ** 2)),
         "final_kernel_heldout_accuracy": float(np.mean(np.argmax(moved, 1) == test.labels)),

@@ -18,6 +18,9 @@ ESTIMATE = "#d9731a"
 THIRD = "#3a8f4b"
 REFERENCE = "#777777"
 
+#: The report's one error convention, named in every label that shows an error.
+MSE_LABEL = "MSE: mean over examples and outputs of (f − y)²"
+
 
 def _figure(width: float = 6.4, height: float = 3.6, *, cols: int = 1) -> tuple[Figure, list]:
     fig = Figure(figsize=(width, height), layout="constrained")
@@ -93,33 +96,60 @@ def heatmap_figure(kernels: dict[str, np.ndarray], labels, class_names) -> Figur
     return fig
 
 
-def drift_figure(steps, distance, alignment) -> Figure:
-    """Kernel distance to initialization and kernel-label alignment against training step."""
+def drift_figure(steps, *, relative_change, distance, alignment, threshold: float,
+                 spread: tuple[float, float] | None = None) -> Figure:
+    """The laziness criteria on the kernel against training step, with the threshold and the
+    spread between independent initializations; and the kernel-label alignment.
+
+    Args:
+        relative_change, distance: (T,) ``‖Θ_t − Θ_0‖/‖Θ_0‖`` and ``1 − cos(Θ_0, Θ_t)``.
+        alignment: (T,) centered alignment with the labels.
+        threshold: the laziness threshold; spread: (relative change, distance) between
+            independent initializations, or None.
+    """
     steps = np.asarray(steps)
     fig, (left, right) = _figure(8.0, 3.4, cols=2)
-    left.plot(steps, distance, "o-", color=OBSERVED)
+    left.plot(steps, relative_change, "o-", color=OBSERVED,
+              label="relative change ‖Θ_t − Θ_0‖/‖Θ_0‖")
+    left.plot(steps, distance, "s--", color=ESTIMATE, label="distance 1 − cos(Θ_0, Θ_t)")
+    left.axhline(threshold, color=REFERENCE, linewidth=1.0, linestyle=":",
+                 label=f"threshold {threshold:.0%}")
+    if spread is not None:
+        left.axhline(spread[0], color=OBSERVED, linewidth=0.8, linestyle="-.",
+                     label="relative change between inits")
+        left.axhline(spread[1], color=ESTIMATE, linewidth=0.8, linestyle="-.",
+                     label="distance between inits")
     left.set_xscale("symlog", linthresh=1)
-    _label(left, "training step", "1 − cos(Θ_0, Θ_t)", "Kernel distance to initialization")
+    _label(left, "training step", "change of the kernel", "Kernel change since initialization",
+           legend=True)
     right.plot(steps, alignment, "o-", color=THIRD)
     right.set_xscale("symlog", linthresh=1)
     _label(right, "training step", "centered alignment A(Θ_t, YYᵀ)", "Kernel-label alignment")
     return fig
 
 
-def forecast_figure(steps, *, observed_train, forecast_train, observed_test=None,
-                    forecast_test=None) -> Figure:
-    """Observed loss (solid) and the lazy-training forecast (dashed), train and test."""
+def forecast_figure(steps, *, observed_train, forecast_train, observed_test, forecast_test,
+                    train_gap, test_gap, threshold: float) -> Figure:
+    """Left: observed MSE (solid) and the lazy-training forecast (dashed), train and test.
+    Right: the gap between observed and forecast outputs relative to the initial residual, with
+    the laziness threshold."""
     steps = np.asarray(steps)
-    fig, (ax,) = _figure()
+    fig, (ax, gap) = _figure(9.0, 3.6, cols=2)
     ax.plot(steps, observed_train, "-", color=OBSERVED, label="train, observed")
     ax.plot(steps, forecast_train, "--", color=OBSERVED, label="train, forecast")
-    if observed_test is not None:
-        ax.plot(steps, observed_test, "-", color=ESTIMATE, label="test, observed")
-        ax.plot(steps, forecast_test, "--", color=ESTIMATE, label="test, forecast")
+    ax.plot(steps, observed_test, "-", color=ESTIMATE, label="test, observed")
+    ax.plot(steps, forecast_test, "--", color=ESTIMATE, label="test, forecast")
     ax.set_xscale("symlog", linthresh=1)
     ax.set_yscale("log")
-    _label(ax, "training step", "loss (1/N) Σ ½‖f − y‖²",
-           "Lazy-training forecast from the initial kernel vs the actual run", legend=True)
+    _label(ax, "training step", MSE_LABEL, "Forecast from the initial kernel vs the run",
+           legend=True)
+    gap.plot(steps, train_gap, "-", color=OBSERVED, label="train outputs")
+    gap.plot(steps, test_gap, "-", color=ESTIMATE, label="test outputs")
+    gap.axhline(threshold, color=REFERENCE, linewidth=1.0, linestyle=":",
+                label=f"threshold {threshold:.0%} (train)")
+    gap.set_xscale("symlog", linthresh=1)
+    _label(gap, "training step", "‖f_obs − f_lin‖ / ‖f_0 − y‖",
+           "Outputs: gap to the forecast", legend=True)
     return fig
 
 
@@ -132,6 +162,6 @@ def risk_figure(ridges, *, gcv, kare, loo, heldout, chosen: float) -> Figure:
     ax.loglog(ridges, heldout, "-", color=OBSERVED, linewidth=2.0, label="held-out test")
     ax.axvline(chosen, color=REFERENCE, linewidth=1.0, linestyle="--",
                label=f"chosen ridge {chosen:.3g}")
-    _label(ax, "ridge r in (K + r·I) α = y", "mean squared error per output",
+    _label(ax, "ridge r in (K + r·I) α = y", MSE_LABEL,
            "Kernel ridge: estimated and held-out test error", legend=True)
     return fig

@@ -1,14 +1,21 @@
 """The report of a run: one self-contained HTML page and a JSON file with every number it shows.
 
-A run directory holds what `run_demo` saved: ``results.json`` (numbers, curves, settings, and the
-RuntimeWarnings the analysis raised) and ``arrays.npz`` (the initial and final train kernels and
-the training labels). The report computes the spectrum of the initial kernel itself, derives the
-cautions from the numbers (a non-lazy run, an ill-conditioned kernel, float32) and writes:
+A run directory holds what `run_demo` saved: ``results.json`` (numbers, curves, settings, the
+laziness verdict, and the RuntimeWarnings the analysis raised) and ``arrays.npz`` (the initial and
+final train kernels and the training labels). The report computes the spectrum of the initial
+kernel itself, derives the cautions from the numbers (a non-lazy run, an ill-conditioned kernel,
+float32) and writes:
 
 - ``report.html``: sections, in order, with these ids: ``summary``, ``cautions``, ``spectrum``,
   ``heatmap``, ``drift``, ``forecast``, ``risk``, ``feature-rank``, ``setup``; every figure an
   embedded base64 PNG;
-- ``report.json``: ``{"summary": [5 lines], "cautions": [...], "sections": {id: numbers}}``.
+- ``report.json``: ``{"summary": [5 lines], "verdict": {...}, "cautions": [...], "sections":
+  {id: numbers}}``.
+
+The report says one thing: a single laziness verdict (`ntkcalc.laziness`, saved by the run) is
+quoted in the summary, the cautions and the sections; every number shown is in report.json; and
+every error is one convention, MSE = mean over examples and outputs of (f − y)², named in each
+label (`plots.MSE_LABEL`).
 
 A kernel store (the ``store`` of ``ntk(net, x, store=...)``, a zarr group) gets a short report:
 summary, cautions, spectrum and heat map (in the stored order, no labels).
@@ -74,14 +81,13 @@ def _fmt(value) -> str:
 
 def _load_store(path: str) -> np.ndarray | None:
     """The (N, N) kernel of an ntkcalc kernel store (traced over outputs), or None if not one."""
-    import zarr
+    from .._tiles.store import read_verified
 
     if not os.path.isfile(os.path.join(path, "zarr.json")):
         return None
-    group = zarr.open_group(path, mode="r")
-    if "ntkcalc" not in group.attrs or "kernel" not in group:
+    k = read_verified(path, what="source")  # every tile's checksum verified; groups summed
+    if k is None:
         return None
-    k = np.asarray(group["kernel"][0])  # the first parameter group: the whole kernel
     if k.ndim not in (2, 4) or k.shape[0] != k.shape[1]:
         raise ValueError(
             f"`source`={path!r} holds a kernel of shape {k.shape}: the report needs K(X, X), "
@@ -154,21 +160,19 @@ def _power_law(spec) -> float:
 
 def _cautions(results: dict, spec) -> list[str]:
     out = list(results["cautions"])
-    fc = results["forecast"]
-    if not fc["lazy"]:
+    verdict = results["laziness"]
+    if not verdict["lazy"]:
         out.append(
-            f"Not lazy: the training loss departs from the forecast by {fc['largest_gap']:.1%} "
-            f"(tolerance {fc['tolerance']:.0%}). The initial kernel's "
-            "forecasts and kernel ridge estimates describe the network linearized at "
-            "initialization, not the trained one (kernel distance to initialization at the last "
-            f"checkpoint: {results['drift']['kernel_distance'][-1]:.3g})."
+            f"Not lazy — the verdict: {verdict['sentence']}. The initial kernel's forecasts and "
+            "kernel ridge estimates describe the network linearized at initialization, not the "
+            "trained one."
         )
     return list(dict.fromkeys(out + _numeric_cautions(spec, results["dtype"])))
 
 
 def _numeric_cautions(spec, dtype: str) -> list[str]:
-    """Cautions on conditioning and precision, for any kernel."""
-    out = []
+    """Cautions on conditioning and precision, for any kernel (and the spectrum's own)."""
+    out = [] if getattr(spec, "caution", None) is None else [spec.caution]
     cond = spec.condition_number
     if cond is None or not math.isfinite(cond) or cond > COND_WARN:
         out.append(
@@ -187,24 +191,25 @@ def _numeric_cautions(spec, dtype: str) -> list[str]:
 
 def _summary(results: dict, spec, cautions: list[str]) -> list[str]:
     d, mdl, tr, fc = results["data"], results["model"], results["training"], results["forecast"]
-    dr, rk = results["drift"], results["risk"]
+    dr, rk, verdict = results["drift"], results["risk"], results["laziness"]
     fr = list(results["feature_rank"]["checkpoints"].values())[-1]
-    lazy = "tracks" if fc["lazy"] else "does NOT track"
+    chooser = "GCV" if rk["chosen_by"] == "gcv" else (
+        f"LOO (GCV disagrees with it {rk['loo_over_gcv']:.3g}×, so its ridge is not used)")
     return [
         f"Data and run: {d['n_train']} train / {d['n_test']} test simulated pump readings in "
         f"{len(d['class_names'])} conditions; {mdl['architecture']} ({mdl['parameters']:,} "
         f"parameters, {results['dtype']}); {tr['steps']} full-batch GD steps at lr={tr['lr']:.3g} "
         f"(stability limit {tr['max_stable_lr']:.3g}).",
-        f"Lazy check: the forecast from the initial kernel {lazy} the training loss (largest "
-        f"gap {fc['largest_gap']:.1%}); final train loss {fc['observed_train_loss'][-1]:.4f} "
-        f"observed vs {fc['forecast_train_loss'][-1]:.4f} forecast, test loss "
-        f"{fc['observed_test_loss'][-1]:.4f} vs {fc['forecast_test_loss'][-1]:.4f}.",
-        f"Kernel drift: distance to the initial kernel {dr['kernel_distance'][-1]:.3g} after "
-        f"{tr['steps']} steps (parameters moved {tr['parameter_change']:.2%}); label alignment "
-        f"{dr['alignment'][0]:.3f} → {dr['alignment'][-1]:.3f}."
-        + (f" {dr['verdict']}" if dr.get("verdict") else ""),
-        f"Test error without a test set: GCV picks ridge {rk['chosen_ridge']:.3g} and estimates "
-        f"MSE {rk['gcv_at_chosen']:.4f}; kernel ridge on held-out data gives "
+        f"Laziness verdict: {verdict['sentence']}.",
+        f"Forecast from the initial kernel vs the run, in {plots.MSE_LABEL}: final train "
+        f"{fc['observed_train_mse'][-1]:.4f} observed vs {fc['forecast_train_mse'][-1]:.4f} "
+        f"forecast, test {fc['observed_test_mse'][-1]:.4f} vs {fc['forecast_test_mse'][-1]:.4f} "
+        f"(test outputs off by up to {fc['largest_test_gap']:.1%} of their initial residual); "
+        f"parameters moved {tr['parameter_change']:.2%}, label alignment "
+        f"{dr['alignment'][0]:.3f} → {dr['alignment'][-1]:.3f}.",
+        f"Test error without a test set ({plots.MSE_LABEL}): the ridge is chosen by {chooser}: "
+        f"{rk['chosen_ridge']:.3g}, where GCV estimates {rk['gcv_at_chosen']:.4f} and LOO "
+        f"{rk['loo_at_chosen']:.4f}; kernel ridge on held-out data gives "
         f"{rk['heldout_at_chosen']:.4f} (accuracy {rk['heldout_accuracy_at_chosen']:.1%}).",
         f"Spectrum: decay exponent {spec.decay_exponent:.2f}, effective rank "
         f"{spec.effective_rank:.1f} of {spec.eigenvalues.size}; last hidden features [H, 1] "
@@ -266,13 +271,15 @@ def _sections(results: dict, arrays: dict) -> list[_Section]:
     spec = spectrum(k0)
     cautions = _cautions(results, spec)
     summary = _summary(results, spec, cautions)
-    d, tr, fc, dr, rk, fr = (results[k] for k in ("data", "training", "forecast", "drift", "risk",
-                                                  "feature_rank"))
+    d, tr, fc, dr, rk, fr, verdict = (results[k] for k in (
+        "data", "training", "forecast", "drift", "risk", "feature_rank", "laziness"))
     names = d["class_names"]
     last = tr["steps"]
     idx = int(np.argmin(np.abs(np.asarray(rk["ridges"]) - rk["chosen_ridge"])))
+    spread = dr.get("init_spread")
     return [
-        _Section("summary", "Summary", "", {"lines": summary}, items=tuple(summary)),
+        _Section("summary", "Summary", "", {"lines": summary, "verdict": verdict},
+                 items=tuple(summary)),
         _Section("cautions", "Cautions",
                  "Where the numbers below can mislead." if cautions else
                  "None: the run is lazy, the kernel well-conditioned, and the computation in "
@@ -285,54 +292,79 @@ def _sections(results: dict, arrays: dict) -> list[_Section]:
             "initialization → at the last step."),
         _Section(
             "drift", "Kernel drift and alignment over training",
-            "Kernel distance 1 − ⟨Θ₀, Θ_t⟩/(‖Θ₀‖‖Θ_t‖) to the initial kernel, and centered "
-            "alignment of Θ_t with the one-hot labels, at each saved checkpoint.",
-            {"steps": dr["steps"], "kernel_distance": dr["kernel_distance"],
-             "alignment": dr["alignment"], "parameter_change": tr["parameter_change"]},
-            rows=(*((f"step {s}", f"distance {a:.4g}, alignment {b:.4f}") for s, a, b in zip(
-                dr["steps"], dr["kernel_distance"], dr["alignment"], strict=True)),
-                  ("‖θ_T − θ₀‖ / ‖θ₀‖", _fmt(tr["parameter_change"]))),
-            figures=(plots.png(plots.drift_figure(dr["steps"], dr["kernel_distance"],
-                                                  dr["alignment"])),),
+            "The laziness criteria on the kernel: relative change ‖Θ_t − Θ₀‖/‖Θ₀‖ and distance "
+            "1 − ⟨Θ₀, Θ_t⟩/(‖Θ₀‖‖Θ_t‖) to the initial kernel at each saved checkpoint, against "
+            "the threshold and against the same quantities between kernels of independent "
+            "initializations (what the random initialization alone changes); and the centered "
+            "alignment of Θ_t with the one-hot labels.",
+            {"steps": dr["steps"], "relative_change": dr["relative_change"],
+             "kernel_distance": dr["kernel_distance"], "alignment": dr["alignment"],
+             "threshold": dr["threshold"], "init_spread": spread,
+             "parameter_change": tr["parameter_change"], "verdict": verdict["sentence"]},
+            rows=(*((f"step {s}", f"relative change {c:.4g}, distance {a:.4g}, alignment {b:.4f}")
+                    for s, c, a, b in zip(dr["steps"], dr["relative_change"],
+                                          dr["kernel_distance"], dr["alignment"], strict=True)),
+                  ("threshold", _fmt(dr["threshold"])),
+                  *(() if spread is None else ((
+                      f"between {spread['count']} independent initializations",
+                      f"relative change {spread['relative_change']:.4g}, distance "
+                      f"{spread['distance']:.4g}"),)),
+                  ("‖θ_T − θ₀‖ / ‖θ₀‖", _fmt(tr["parameter_change"])),
+                  ("verdict", verdict["sentence"])),
+            figures=(plots.png(plots.drift_figure(
+                dr["steps"], relative_change=dr["relative_change"],
+                distance=dr["kernel_distance"], alignment=dr["alignment"],
+                threshold=dr["threshold"], spread=None if spread is None else (
+                    spread["relative_change"], spread["distance"]))),),
         ),
         _Section(
             "forecast", "Forecast vs actual training",
             "Gradient descent on the network linearized at initialization, forecast from the "
             "initial kernel (all output pairs) with the same learning rate and steps, against "
-            "the loss measured while training.",
-            {k: fc[k] for k in fc} | {"lr": tr["lr"], "max_stable_lr": tr["max_stable_lr"]},
-            rows=(("largest relative gap (train loss)", f"{fc['largest_gap']:.2%}"),
-                  ("lazy (gap within tolerance)", _fmt(fc["lazy"])),
-                  ("final train loss: observed / forecast",
-                   f"{fc['observed_train_loss'][-1]:.4g} / {fc['forecast_train_loss'][-1]:.4g}"),
-                  ("final test loss: observed / forecast",
-                   f"{fc['observed_test_loss'][-1]:.4g} / {fc['forecast_test_loss'][-1]:.4g}"),
+            "the outputs measured while training. The gap ‖f_obs − f_lin‖/‖f_0 − y‖ on the "
+            f"training outputs is the verdict's forecast criterion. Errors: {plots.MSE_LABEL}.",
+            {k: fc[k] for k in fc} | {"lr": tr["lr"], "max_stable_lr": tr["max_stable_lr"],
+                                      "verdict": verdict["sentence"]},
+            rows=(("largest gap, train outputs (relative to ‖f_0 − y‖)",
+                   f"{fc['largest_train_gap']:.2%}"),
+                  ("largest gap, test outputs (relative to ‖f_0 − y‖)",
+                   f"{fc['largest_test_gap']:.2%}"),
+                  ("threshold on the train gap", _fmt(fc["tolerance"])),
+                  ("verdict", verdict["sentence"]),
+                  ("final train MSE: observed / forecast",
+                   f"{fc['observed_train_mse'][-1]:.4g} / {fc['forecast_train_mse'][-1]:.4g}"),
+                  ("final test MSE: observed / forecast",
+                   f"{fc['observed_test_mse'][-1]:.4g} / {fc['forecast_test_mse'][-1]:.4g}"),
                   ("final test accuracy: observed / forecast",
                    f"{fc['observed_test_accuracy'][-1]:.1%} / "
                    f"{fc['forecast_test_accuracy'][-1]:.1%}"),
                   ("learning rate / stability limit 2N/λ_max",
                    f"{tr['lr']:.4g} / {tr['max_stable_lr']:.4g}")),
             figures=(plots.png(plots.forecast_figure(
-                fc["steps"], observed_train=fc["observed_train_loss"],
-                forecast_train=fc["forecast_train_loss"], observed_test=fc["observed_test_loss"],
-                forecast_test=fc["forecast_test_loss"])),),
+                fc["steps"], observed_train=fc["observed_train_mse"],
+                forecast_train=fc["forecast_train_mse"], observed_test=fc["observed_test_mse"],
+                forecast_test=fc["forecast_test_mse"], train_gap=fc["train_gap"],
+                test_gap=fc["test_gap"], threshold=fc["tolerance"])),),
         ),
         _Section(
             "risk", "Test error without a test set",
             "Kernel ridge regression on the initial kernel with one-hot targets. GCV, KARE and "
             "leave-one-out estimate its test error from the training set alone; the held-out "
-            "curve is its error on the test set. The ridge is chosen by GCV.",
+            "curve is its error on the test set. The ridge is GCV's, or LOO's when LOO and GCV "
+            f"differ by more than a factor 2 at GCV's ridge. Errors: {plots.MSE_LABEL}.",
             dict(rk),
-            rows=(("chosen ridge (GCV)", _fmt(rk["chosen_ridge"])),
-                  ("GCV estimate at the chosen ridge", _fmt(rk["gcv_at_chosen"])),
-                  ("KARE / LOO at the chosen ridge",
-                   f"{rk['kare'][idx]:.4g} / {rk['loo'][idx]:.4g}"),
-                  ("held-out error at the chosen ridge", _fmt(rk["heldout_at_chosen"])),
+            rows=(("chosen ridge", f"{_fmt(rk['chosen_ridge'])} (by {rk['chosen_by'].upper()})"),
+                  ("LOO / GCV at GCV's ridge (agree within 2×)",
+                   f"{rk['loo_over_gcv']:.4g} ({_fmt(rk['estimators_agree'])})"),
+                  ("GCV / KARE / LOO MSE at the chosen ridge",
+                   f"{rk['gcv_at_chosen']:.4g} / {rk['kare'][idx]:.4g} / "
+                   f"{rk['loo_at_chosen']:.4g}"),
+                  ("held-out MSE at the chosen ridge", _fmt(rk["heldout_at_chosen"])),
                   ("held-out accuracy at the chosen ridge",
                    f"{rk['heldout_accuracy_at_chosen']:.1%}"),
                   ("best ridges: GCV / KARE / LOO", " / ".join(
                       _fmt(rk["best"][k]) for k in ("gcv", "kare", "loo"))),
-                  (f"held-out error / accuracy with the step-{last} kernel",
+                  (f"held-out MSE / accuracy with the step-{last} kernel",
                    f"{rk['final_kernel_heldout']:.4g} / "
                    f"{rk['final_kernel_heldout_accuracy']:.1%}")),
             figures=(plots.png(plots.risk_figure(
@@ -360,7 +392,7 @@ def _sections(results: dict, arrays: dict) -> list[_Section]:
                                                                      strict=True))),
                   ("model", results["model"]["architecture"]),
                   ("parameters", _fmt(results["model"]["parameters"])),
-                  ("loss", tr["loss"]), ("optimizer", tr["optimizer"]),
+                  ("training loss", tr["loss"]), ("optimizer", tr["optimizer"]),
                   ("checkpoint steps", ", ".join(map(str, tr["checkpoint_steps"]))),
                   ("precision", results["dtype"]), ("scale", results["scale"])),
         ),
@@ -424,7 +456,8 @@ def write_report(source, *, out=None) -> tuple[str, str]:
     by_id = {s.id: s.numbers for s in sections}
     document = {
         "title": title, "ntkcalc_version": __version__, "source": path,
-        "summary": by_id["summary"]["lines"], "cautions": by_id["cautions"]["items"],
+        "summary": by_id["summary"]["lines"], "verdict": by_id["summary"].get("verdict"),
+        "cautions": by_id["cautions"]["items"],
         "sections": {s.id: s.numbers for s in sections if s.id not in ("summary", "cautions")},
     }
     html_path = os.path.join(target, "report.html")
