@@ -6,6 +6,7 @@ from sklearn.datasets import load_digits, load_iris
 from sklearn.kernel_ridge import KernelRidge
 from sklearn.metrics.pairwise import rbf_kernel
 
+import ntkcalc
 from ntkcalc._analysis.ridge import ridge_fit
 from ntkcalc._analysis.risk import DISAGREEMENT_FACTOR, RiskEstimates, risk
 
@@ -143,6 +144,13 @@ def test_agreeing_estimates_keep_the_gcv_ridge(digits):
     assert est.agree and est.recommended_by == "gcv" and est.recommended == est.best["gcv"]
     assert 1 / DISAGREEMENT_FACTOR <= est.ratio <= DISAGREEMENT_FACTOR
     assert not est.indefinite.any()
+    assert est.kernel == "a plain array of unknown kind" and est.kernel_dtype == "float64"
+    # integer labels are class labels (one-hot rows), the package's label convention
+    labels = np.argmax(y[:200], axis=1)
+    np.testing.assert_allclose(risk(k, labels, ridges=np.logspace(-2, 3, 11)).loo, est.loo,
+                               rtol=1e-12)
+    tagged = risk(ntkcalc.KernelArray(k, kind="trace", num_outputs=10), y[:200], ridges=1.0)
+    assert "'trace' kernel over 10 output(s)" in tagged.kernel
 
 
 def test_indefinite_ridges_warn_like_ridge_fit_refuses():

@@ -38,6 +38,7 @@ import warnings
 
 import numpy as np
 
+from .._kind import describe, kind_of
 from . import _checks
 from ._eig import eigh_descending
 from ._result import Result
@@ -70,6 +71,10 @@ class RiskEstimates(Result):
         recommended_by: "gcv" or "loo".
         indefinite: (R,) True where ``K + r·I`` is singular or indefinite; the estimates are NaN
             there.
+        kernel: which kernel they came from (its kind and outputs, from `ntkcalc.ntk`, or "a
+            plain array of unknown kind").
+        kernel_dtype: the dtype the kernel was computed in (float32 keeps ~7 digits, which
+            small ridges need more of).
     """
 
     ridges: np.ndarray
@@ -82,6 +87,8 @@ class RiskEstimates(Result):
     recommended: float
     recommended_by: str
     indefinite: np.ndarray
+    kernel: str = "a plain array of unknown kind"
+    kernel_dtype: str = "float64"
 
 
 def risk(k_train, y_train, *, ridges) -> RiskEstimates:
@@ -108,6 +115,8 @@ def risk(k_train, y_train, *, ridges) -> RiskEstimates:
             _checks.NOT_POSITIVE.format(name="ridges", value=ridges)
             + " Leave-one-out and GCV are 0/0 at ridge 0 for an interpolating fit."
         )
+    kernel = describe(*kind_of(k_train))
+    kernel_dtype = str(np.asarray(k_train).dtype)
     k = _checks.square_kernel("k_train", k_train)
     n = k.shape[0]
     y = _checks.targets("y_train", y_train, n=n, kname="k_train", kshape=k.shape)
@@ -158,4 +167,5 @@ def risk(k_train, y_train, *, ridges) -> RiskEstimates:
         )
     by = "gcv" if agree else "loo"
     return RiskEstimates(ridges=r, loo=loo, gcv=gcv, kare=kare, best=best, ratio=ratio,
-                         agree=agree, recommended=best[by], recommended_by=by, indefinite=bad)
+                         agree=agree, recommended=best[by], recommended_by=by, indefinite=bad,
+                         kernel=kernel, kernel_dtype=kernel_dtype)
