@@ -1,0 +1,684 @@
+"""Your own training run, end to end: from checkpoints to every answer, in one typed result.
+
+`analyse_run` takes a model's checkpoints (an orbax ``CheckpointManager`` directory with the linen
+module or nnx model they were saved from, or ``(step, Net)`` pairs), the training inputs and
+targets, and optionally test inputs and targets. It computes each kernel in the mode its answer
+needs, so nobody wires modes by hand:
+
+- the **trace kernel** ``Σ_a Θ_aa`` (N, N) on the training set at every checkpoint: drift
+  (distance ``1 − cos(K_t, K_0)`` and relative change ``‖K_t − K_0‖_F/‖K_0‖_F``), centered
+  kernel-target alignment (Cortes, Mohri & Rostamizadeh, JMLR 13, 2012), spectrum, and the
+  laziness verdict (`ntkcalc.laziness`, through `ntkcalc.drift`);
+- the trace kernel **per parameter group** (`ntk_by_layer`) at the first and last checkpoint:
+  which layer groups moved;
+- the numerical rank of the readout's features at every checkpoint (`feature_rank`): the
+  interpolation check;
+- at each checkpoint chosen in ``forecast_from`` (default the first and the last): the **full
+  kernel** (N, N, O, O) on train and test-vs-train (or, above `FULL_KERNEL_ROWS` rows N·O, the
+  per-output kernel ``trace / O`` with its assumption ``Θ = K ⊗ I_O`` recorded), the outputs there,
+  and the forecast of gradient descent on the model linearized around that checkpoint,
+  ``f_lin(θ, x) = f(θ_t, x) + J_t(x)(θ − θ_t)`` (Lee et al., NeurIPS 2019, arXiv:1902.06720): "if
+  training continued lazily from step t, where does it land?";
+- at the same checkpoints, kernel ridge on the trace kernel: leave-one-out, GCV and KARE over a
+  ridge grid (`risk`), the test error of kernel ridge at the ridge leave-one-out chooses when a
+  test set is given.
+
+Errors are in one convention: MSE, the mean over examples and outputs of ``(f − y)²``.
+"""
+
+from __future__ import annotations
+
+import base64
+import dataclasses
+import html
+import inspect
+import json
+import os
+from collections.abc import Sequence
+from typing import Literal
+
+import jax
+import numpy as np
+
+from .._adapters.net import Net
+from .._analysis import _checks
+from .._analysis._result import Result
+from .._analysis.alignment import alignment
+from .._analysis.expressivity import FeatureRank, feature_rank
+from .._analysis.forecast import Forecast, forecast
+from .._analysis.laziness import Laziness, laziness, output_gap
+from .._analysis.laziness import relative_change as _relative_change
+from .._analysis.ridge import ridge_fit
+from .._analysis.risk import RiskEstimates, risk
+from .._analysis.spectrum import Spectrum, spectrum
+from .._kernel import ntk, ntk_by_layer
+from .._kind import KernelArray, per_output_kernel
+from . import plots
+from .demo import _Cautions  # RuntimeWarnings kept as cautions, as the demo keeps them
+from .drift import DEFAULT_THRESHOLD, Drift, _from_directory, drift
+
+#: Above this many (example, output) rows N·O the forecast uses the per-output kernel ``trace / O``
+#: instead of the full (N, N, O, O) kernel. The forecast eigendecomposes the (N·O, N·O) matrix:
+#: measured 2000 rows in about 25 s on two busy CPU cores, growing as (N·O)³. Our choice, the
+#: same size as `feature_rank`'s automatic NTK Gram.
+FULL_KERNEL_ROWS = 2048
+
+#: Ridge grid of the risk estimates: ``mean(diag K) · 10^p`` for p in [RIDGE_DECADES] (our choice,
+#: as in the demo: from near interpolation to far above the kernel's scale).
+RIDGE_DECADES = (-6.0, 2.0)
+
+Loss = Literal["mse", "cross-entropy"]
+
+PER_OUTPUT_NOTE = (
+    "The forecast from step {step} uses the per-output kernel trace / {o} (assuming Θ = K ⊗ I_{o}, "
+    "no cross-output terms) because the full kernel has N·O = {rows} rows, above {limit}; pass "
+    "full_kernel_rows={rows} for the exact forecast."
+)
+FLOAT32_NOTE = (
+    "Kernels are float32 (about 7 significant digits): small eigenvalues, the numerical rank and "
+    "leave-one-out estimates near interpolation are at rounding level. Enable JAX x64 for float64."
+)
+NOT_GD_NOTE = (
+    "The forecasts are of full-batch gradient descent on L = (1/N) Σ_i ½‖f(x_i) − y_i‖² with "
+    "lr={lr:g}; they were not compared with the checkpoints (full_batch_gd=False), so the laziness "
+    "verdict rests on the kernel alone."
+)
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
+class GroupChange(Result):
+    """How one parameter group's kernel moved between the first and last checkpoint.
+
+    Fields:
+        group: the group's name (top-level parameter path, as `ntk_by_layer` names it).
+        relative_change: ``‖K_g,T − K_g,0‖_F / ‖K_g,0‖_F`` of the group's trace kernel.
+        share_first, share_last: the group's share of the kernel's trace, ``tr K_g / tr K``, at
+            the first and last checkpoint.
+        moved: ``relative_change`` above the laziness threshold.
+    """
+
+    group: str
+    relative_change: float
+    share_first: float
+    share_last: float
+    moved: bool
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
+class CheckpointAnswers(Result):
+    """The answers that need a kernel at one checkpoint: forecast, risk, spectrum.
+
+    Fields:
+        step: the training step of the checkpoint.
+        kernel: which kernel the forecast used: ``"full"`` (exact (N, N, O, O)) or the
+            per-output kernel with its assumption (``Forecast.kernel``).
+        kernel_dtype: the dtype the kernels were computed in.
+        forecast: the linearized model around this checkpoint trained by gradient descent for
+            ``forecast.steps`` more steps (None without ``lr``).
+        train_mse, test_mse: (T,) forecast MSE on train and test (test None without a test set);
+            None without ``lr``.
+        gap: (S,) the gap ``‖f_obs − f_lin‖_F / ‖f_t − y‖_F`` at the later checkpoints
+            ``gap_steps`` (`laziness.output_gap`), when the run was full-batch gradient descent
+            with ``lr`` (``full_batch_gd``); else None.
+        gap_steps: (S,) the training steps of ``gap``, or None.
+        spectrum: `Spectrum` of the trace kernel on the training set.
+        alignment: centered kernel-target alignment of the trace kernel.
+        risk: `RiskEstimates` of kernel ridge on the trace kernel (ridges on its axis).
+        ridge: the ridge leave-one-out chooses (``risk.best["loo"]``).
+        loo, gcv: the LOO and GCV estimates at that ridge (MSE).
+        test_mse_ridge: MSE of kernel ridge at ``ridge`` on the test set, or None.
+        test_accuracy_ridge: its accuracy for classification targets, or None.
+        test_mse_by_ridge: (R,) MSE of kernel ridge on the test set at every ridge of
+            ``risk.ridges``, or None without a test set.
+    """
+
+    step: int
+    kernel: str
+    kernel_dtype: str
+    forecast: Forecast | None
+    train_mse: np.ndarray | None
+    test_mse: np.ndarray | None
+    gap: np.ndarray | None
+    gap_steps: np.ndarray | None
+    spectrum: Spectrum
+    alignment: float
+    risk: RiskEstimates
+    ridge: float
+    loo: float
+    gcv: float
+    test_mse_ridge: float | None
+    test_accuracy_ridge: float | None
+    test_mse_by_ridge: np.ndarray | None
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
+class RunAnalysis(Result):
+    """Everything `analyse_run` found about one training run.
+
+    Fields:
+        steps: (T,) the checkpoints' training steps.
+        num_train, num_test: examples in the training and test sets (num_test 0 without one).
+        num_outputs: O, the model's outputs.
+        dtype: the dtype of every kernel.
+        kinds: answer → the kernel it came from (e.g. ``"drift": "trace (N, N)"``).
+        drift: `Drift` over the checkpoints (trace kernels on the training set).
+        laziness: the one laziness verdict (`ntkcalc.laziness`): the kernel criteria of
+            ``drift`` and, with ``full_batch_gd``, the forecast gap of the first checkpoint.
+        lazy: ``laziness.lazy``; verdict: ``laziness.sentence``.
+        groups: per parameter group, how its kernel moved (`GroupChange`).
+        feature_ranks: (T,) the interpolation check at each checkpoint (`FeatureRank`), or None
+            at a checkpoint where it could not be computed (the reason is in ``cautions``).
+        checkpoints: `CheckpointAnswers` at each step of ``forecast_from``.
+        cautions: where a number may mislead (non-lazy run, per-output approximation,
+            conditioning, precision, estimator disagreement), one sentence each.
+    """
+
+    steps: np.ndarray
+    num_train: int
+    num_test: int
+    num_outputs: int
+    dtype: str
+    kinds: dict
+    drift: Drift
+    laziness: Laziness
+    lazy: bool
+    verdict: str
+    groups: tuple[GroupChange, ...]
+    feature_ranks: tuple[FeatureRank | None, ...]
+    checkpoints: tuple[CheckpointAnswers, ...]
+    cautions: tuple[str, ...]
+
+    def to_dict(self) -> dict:
+        """Every number as plain Python values (NaN and inf → None); what `to_json` writes."""
+        d = self.drift
+        return _plain({
+            "steps": self.steps, "num_train": self.num_train, "num_test": self.num_test,
+            "num_outputs": self.num_outputs, "dtype": self.dtype, "kinds": self.kinds,
+            "lazy": self.lazy, "verdict": self.verdict, "laziness": self.laziness.to_dict(),
+            "drift": {"table": d.to_dict(), "threshold": d.threshold, "notes": list(d.notes)},
+            "groups": [dataclasses.asdict(g) for g in self.groups],
+            "feature_rank": [None if r is None else _rank_numbers(r) for r in self.feature_ranks],
+            "checkpoints": [_answers_numbers(a) for a in self.checkpoints],
+            "cautions": list(self.cautions),
+        })
+
+    def to_json(self, *, indent: int | None = None) -> str:
+        """`to_dict` as JSON."""
+        return json.dumps(self.to_dict(), indent=indent, ensure_ascii=False, allow_nan=False)
+
+    def plot(self):
+        """An overview: kernel change with the threshold, alignment, forecast MSE from each chosen
+        checkpoint, and the spectra; returns a matplotlib Figure (no pyplot, any backend)."""
+        from matplotlib.figure import Figure
+
+        fig = Figure(figsize=(10.0, 7.0), layout="constrained")
+        change, align, fc, spec = fig.subplots(2, 2).ravel()
+        d = self.drift
+        change.plot(d.steps, d.relative_change, "o-", color=plots.OBSERVED,
+                    label="relative change ‖K_t − K_0‖/‖K_0‖")
+        change.plot(d.steps, d.distance_to_initial, "s--", color=plots.ESTIMATE,
+                    label="distance 1 − cos(K_t, K_0)")
+        change.axhline(d.threshold, color=plots.REFERENCE, ls=":",
+                       label=f"threshold {d.threshold:.0%}")
+        change.set(xlabel="training step", ylabel="kernel change",
+                   title="lazy" if self.lazy else "not lazy")
+        change.legend(fontsize="small", frameon=False)
+        align.plot(d.steps, d.alignment, "o-", color=plots.THIRD)
+        align.set(xlabel="training step", ylabel="centered alignment A(K_t, YYᵀ)",
+                  title="Kernel-label alignment")
+        for a in self.checkpoints:
+            if a.forecast is None:
+                continue
+            t = a.step + a.forecast.steps
+            (line,) = fc.plot(t, a.train_mse, "-", label=f"train, from step {a.step}")
+            if a.test_mse is not None:
+                fc.plot(t, a.test_mse, "--", color=line.get_color(),
+                        label=f"test, from step {a.step}")
+        fc.set_yscale("log")
+        fc.set(xlabel="training step", ylabel=plots.MSE_LABEL,
+               title="Lazy forecast from each chosen checkpoint")
+        fc.legend(fontsize="small", frameon=False)
+        for a in self.checkpoints:
+            w = a.spectrum.eigenvalues
+            w = w[w > 0]
+            spec.loglog(np.arange(1, w.size + 1), w, ".", markersize=3, label=f"step {a.step}")
+        spec.set(xlabel="rank i", ylabel="eigenvalue λ_i", title="Trace kernel spectrum")
+        spec.legend(fontsize="small", frameon=False)
+        return fig
+
+    def write(self, directory) -> tuple[str, str]:
+        """Write ``result.json`` (`to_json`) and a self-contained ``report.html`` (figures as
+        base64 PNG) into ``directory`` (created). Returns their paths ``(html, json)``."""
+        if not isinstance(directory, str | os.PathLike):
+            raise TypeError(
+                f"`directory` must be a path (str or os.PathLike), got {type(directory).__name__}.")
+        path = os.path.abspath(os.fspath(directory))
+        if os.path.exists(path) and not os.path.isdir(path):
+            raise ValueError(f"`directory`={path!r} exists and is not a directory; pass one.")
+        os.makedirs(path, exist_ok=True)
+        json_path, html_path = os.path.join(path, "result.json"), os.path.join(path, "report.html")
+        with open(json_path, "w", encoding="utf-8") as fh:
+            fh.write(self.to_json(indent=1))
+        with open(html_path, "w", encoding="utf-8") as fh:
+            fh.write(_html(self))
+        return html_path, json_path
+
+
+# -- the workflow ---------------------------------------------------------------------------------
+def analyse_run(
+    source,
+    x_train,
+    y_train,
+    *,
+    module=None,
+    example=None,
+    variables=None,
+    item: str | None = None,
+    subtree: str | None = None,
+    steps: Sequence[int] | None = None,
+    x_test=None,
+    y_test=None,
+    lr: float | None = None,
+    horizon: int | None = None,
+    forecast_from: Sequence[int] | None = None,
+    loss: Loss = "mse",
+    full_batch_gd: bool = False,
+    inits: Sequence[Net] | None = None,
+    layer: str | None = None,
+    threshold: float = DEFAULT_THRESHOLD,
+    ridges: int = 25,
+    full_kernel_rows: int = FULL_KERNEL_ROWS,
+    progress: bool = False,
+) -> RunAnalysis:
+    """From a training run's checkpoints to drift, laziness, forecasts, test error, interpolation
+    check, spectrum and alignment (the module docstring lists which kernel serves which answer).
+
+    Args:
+        source: an orbax ``CheckpointManager`` directory (then ``module``, and for linen
+            ``example`` or ``variables``, ``item``, ``subtree`` as in `load_checkpoint`), or a
+            sequence of at least two ``(step, Net)`` pairs in training order.
+        x_train: (N, ...) training inputs (or the subset to analyse).
+        y_train: (N,) integer class labels (read as one-hot rows, the label convention), (N, O)
+            one-hot rows or (N,)/(N, O) real targets.
+        module, example, variables, item, subtree: for a checkpoint directory (`load_checkpoint`).
+        steps: for a directory, the saved steps to use (default all).
+        x_test, y_test: optional test inputs and targets (same formats), for the forecast's test
+            curve and the test error of kernel ridge.
+        lr: the learning rate of the forecasts; None skips them (risk, drift and the rest are
+            still computed).
+        horizon: how many steps each forecast runs past its checkpoint (default: the run's
+            length, last step − first step, at least 1).
+        forecast_from: the checkpoint steps to forecast from and compute risk at (default the
+            first and the last).
+        loss: the forecast's loss, ``"mse"`` or ``"cross-entropy"`` (`forecast`).
+        full_batch_gd: the run *was* full-batch gradient descent on that loss with ``lr`` (as
+            `forecast` defines it). Then each forecast is compared with the later checkpoints'
+            outputs, and the gap of the forecast from the first checkpoint enters the laziness
+            verdict. Leave False for minibatch or adaptive optimizers: the gap would measure the
+            optimizer, not laziness.
+        inits: Nets of the same architecture at independent initializations: the init-spread
+            yardstick of the verdict (`drift`).
+        layer: the features of the interpolation check (`feature_rank`'s ``layer``; default its
+            own, the readout's input).
+        threshold: the laziness threshold on the kernel's change (default 5%).
+        ridges: number of ridges in the risk grid (log-spaced over `RIDGE_DECADES` times the
+            kernel's mean diagonal).
+        full_kernel_rows: the largest N·O for which forecasts use the exact full kernel.
+        progress: progress bars of the kernel computations.
+
+    Returns:
+        `RunAnalysis`; ``write(directory)`` gives the JSON and HTML report.
+    """
+    x = _checks.examples("x_train", x_train)
+    if lr is not None:
+        lr = _checks.positive("lr", lr)
+    if horizon is not None:
+        horizon = _checks.positive_int("horizon", horizon)
+    full_kernel_rows = _checks.positive_int("full_kernel_rows", full_kernel_rows)
+    ridges = _checks.positive_int("ridges", ridges)
+    if loss not in ("mse", "cross-entropy"):
+        raise ValueError(f"`loss` must be 'mse' or 'cross-entropy', got {loss!r}.")
+    if not isinstance(full_batch_gd, bool):
+        raise TypeError(f"`full_batch_gd` must be True or False, got {full_batch_gd!r}.")
+    if full_batch_gd and lr is None:
+        raise ValueError("`full_batch_gd=True` compares the forecast with the run: pass its `lr`.")
+    if (x_test is None) != (y_test is None):
+        raise ValueError("`x_test` and `y_test` go together: pass both or neither.")
+    step_arr, nets = _checkpoints(source, steps, dict(module=module, example=example,
+                                                      variables=variables, item=item,
+                                                      subtree=subtree))
+    chosen = _forecast_steps(forecast_from, step_arr)
+    xt = None if x_test is None else _checks.examples("x_test", x_test)
+
+    run = jax.jit(nets[0].call)  # every Net shares the first one's call (`Net.replace`)
+    outputs = [np.asarray(run(n.params, n.state, x)) for n in nets]
+    n, o = outputs[0].shape[0], int(np.prod(outputs[0].shape[1:], dtype=np.int64))
+    outputs = [f.reshape(n, o) for f in outputs]
+    bad = [int(s) for s, f in zip(step_arr, outputs, strict=True) if not np.all(np.isfinite(f))]
+    if bad:
+        raise ValueError(
+            f"The model's outputs on `x_train` are not finite at steps {bad}: the run diverged "
+            "there (or the checkpoints are damaged). Pass the steps before it (`steps=` for a "
+            "directory); no kernel of a diverged network describes training."
+        )
+    y = _checks.targets("y_train", y_train, n=n, kname="x_train", kshape=x.shape, num_classes=o)
+    _checks.same_outputs("y_train", y, want=o, ref="the model's outputs")
+    yt = labels_t = None
+    if xt is not None:
+        yt = _checks.targets("y_test", y_test, n=xt.shape[0], kname="x_test", kshape=xt.shape,
+                             num_classes=o)
+        _checks.same_outputs("y_test", yt, want=o, ref="the model's outputs")
+        labels_t = _class_labels(y_test, yt)
+    options = {"progress": progress}
+    cautions = _Cautions()
+    with cautions.watch():
+        dr = drift(nets, x, y_train, steps=step_arr.tolist(), inits=inits, threshold=threshold,
+                   **options)
+    dtype = str(dr.kernels.dtype)
+    groups = _groups(nets[0], nets[-1], x, threshold=threshold, options=options)
+    ranks = tuple(_feature_rank(net, x, layer, step, cautions)
+                  for net, step in zip(nets, step_arr, strict=True))
+    span = max(int(step_arr[-1] - step_arr[0]), 1) if horizon is None else horizon
+    answers = []
+    for s in chosen:
+        i = int(np.flatnonzero(step_arr == s)[0])
+        with cautions.watch():
+            answers.append(_answers(
+                nets[i], int(s), x, y, xt, yt, labels_t, kernel=dr.kernels[i], lr=lr, loss=loss,
+                horizon=span, ridges=ridges, full_rows=full_kernel_rows, options=options,
+                later=[(int(t), outputs[j]) for j, t in enumerate(step_arr) if t >= s]
+                if full_batch_gd else None, cautions=cautions))
+    verdict = dr.laziness
+    first = answers[0] if answers and answers[0].step == step_arr[0] else None
+    if first is not None and first.gap is not None:
+        verdict = laziness(relative_change=dr.relative_change, distance=dr.distance_to_initial,
+                           steps=dr.steps, forecast_gap=first.gap, gap_steps=first.gap_steps,
+                           spread=dr.laziness.spread, kernel_threshold=threshold)
+    notes = list(dr.notes)
+    if dtype == "float32":
+        notes.append(FLOAT32_NOTE)
+    if lr is not None and not full_batch_gd:
+        notes.append(NOT_GD_NOTE.format(lr=lr))
+    kinds = {
+        "drift, alignment, spectrum, risk, groups": f"trace (N, N) = ({n}, {n})",
+        "forecast": ", ".join(sorted({a.kernel for a in answers})) if lr is not None else "none",
+        "dtype": dtype,
+    }
+    return RunAnalysis(
+        steps=step_arr, num_train=n, num_test=0 if xt is None else int(xt.shape[0]),
+        num_outputs=o, dtype=dtype, kinds=kinds, drift=dr, laziness=verdict, lazy=verdict.lazy,
+        verdict=verdict.sentence, groups=groups, feature_ranks=ranks, checkpoints=tuple(answers),
+        cautions=tuple(dict.fromkeys(notes + cautions.items)),
+    )
+
+
+# -- pieces ---------------------------------------------------------------------------------------
+def _checkpoints(source, steps, load: dict) -> tuple[np.ndarray, list[Net]]:
+    """(steps, Nets) from a checkpoint directory or ``(step, Net)`` pairs."""
+    if isinstance(source, str | os.PathLike):
+        chosen, nets = _from_directory(source, steps, load)
+        return np.asarray(chosen, dtype=np.int64), list(nets)
+    if any(v is not None for v in load.values()) or steps is not None:
+        raise ValueError(
+            "`module`, `example`, `variables`, `item`, `subtree` and `steps` are for a checkpoint "
+            "directory; `source` is a sequence of (step, Net) pairs. Leave them out."
+        )
+    pairs = list(source) if isinstance(source, Sequence) else None
+    if pairs is None or len(pairs) < 2 or not all(
+            isinstance(p, tuple) and len(p) == 2 and isinstance(p[1], Net) for p in pairs):
+        raise TypeError(
+            "`source` must be a checkpoint directory or a sequence of at least two (step, Net) "
+            f"pairs, got {type(source).__name__}"
+            f"{f' of length {len(pairs)}' if pairs is not None else ''}."
+        )
+    step_arr = np.asarray([p[0] for p in pairs])
+    if not np.issubdtype(step_arr.dtype, np.integer) or np.any(np.diff(step_arr) <= 0):
+        raise ValueError(
+            f"The steps of `source` must be increasing integers, got {step_arr.tolist()[:8]}. "
+            "Sort the run by step."
+        )
+    first = pairs[0][1]
+    nets = [first] + [p[1] if p[1].call is not first.call else
+                      first.replace(params=p[1].params, state=p[1].state) for p in pairs[1:]]
+    return step_arr.astype(np.int64), nets
+
+
+def _forecast_steps(forecast_from, step_arr: np.ndarray) -> np.ndarray:
+    if forecast_from is None:
+        return np.unique(step_arr[[0, -1]])
+    chosen = np.unique(np.asarray(forecast_from))
+    if chosen.ndim != 1 or chosen.size == 0 or not np.issubdtype(chosen.dtype, np.integer):
+        raise ValueError(
+            f"`forecast_from` must be a non-empty sequence of step numbers, got {forecast_from!r}.")
+    missing = sorted(set(chosen.tolist()) - set(step_arr.tolist()))
+    if missing:
+        raise ValueError(
+            f"`forecast_from` {missing} are not checkpoints of the run; its steps are "
+            f"{step_arr.tolist()}.")
+    return chosen
+
+
+def _class_labels(y_given, onehot: np.ndarray) -> np.ndarray | None:
+    """Integer classes of classification targets (labels or one-hot rows), else None."""
+    if _checks.is_label_array(y_given):
+        return np.asarray(y_given).astype(np.int64)
+    one_hot = np.all((onehot == 0) | (onehot == 1)) and np.all(onehot.sum(axis=1) == 1)
+    return np.argmax(onehot, axis=1) if onehot.shape[1] > 1 and one_hot else None
+
+
+def _groups(first: Net, last: Net, x, *, threshold: float, options: dict) -> tuple:
+    """`GroupChange` of each top-level parameter group between the first and last Net."""
+    before = ntk_by_layer(first, x, outputs="trace", **options)
+    after = ntk_by_layer(last, x, outputs="trace", **options)
+    tr0 = sum(float(np.trace(k)) for k in before.values())
+    tr1 = sum(float(np.trace(k)) for k in after.values())
+    out = []
+    for name, k0 in before.items():
+        k0 = np.asarray(k0)
+        if not np.any(k0):  # a group the outputs do not depend on here
+            change = 0.0 if not np.any(after[name]) else float("inf")
+        else:
+            change = _relative_change(after[name], k0)
+        out.append(GroupChange(group=name, relative_change=change,
+                               share_first=float(np.trace(k0)) / tr0,
+                               share_last=float(np.trace(after[name])) / tr1,
+                               moved=bool(change > threshold)))
+    return tuple(out)
+
+
+def _feature_rank(net: Net, x, layer, step: int, cautions: _Cautions) -> FeatureRank | None:
+    """The interpolation check at one checkpoint; None, with the reason as a caution, when the
+    features cannot be found."""
+    accepted = inspect.signature(feature_rank).parameters
+    opts = {} if layer is None else {"layer": layer}
+    if "ntk_gram" in accepted:
+        opts["ntk_gram"] = "none"  # the kernel's own spectrum is in the result already
+    try:
+        with cautions.watch():
+            return feature_rank(net, x, **opts)
+    except (ValueError, TypeError) as err:
+        cautions.items.append(f"Feature rank at step {step} not computed: {err}")
+        return None
+
+
+def _mse(f, y) -> np.ndarray:
+    """The one error convention: mean over examples and outputs of ``(f − y)²`` (per leading
+    index for stacked outputs)."""
+    return np.mean((np.asarray(f) - np.asarray(y)) ** 2, axis=(-2, -1))
+
+
+def _forecast_grid(horizon: int, later: list[int]) -> np.ndarray:
+    """0, about 40 log-spaced steps up to ``horizon``, and the offsets of later checkpoints."""
+    grid = np.round(np.geomspace(1, horizon, 40)).astype(np.int64)
+    return np.unique(np.concatenate([[0], grid, np.asarray(later, np.int64)]))
+
+
+def _answers(net, step, x, y, xt, yt, labels_t, *, kernel, lr, loss, horizon, ridges, full_rows,
+             options, later, cautions) -> CheckpointAnswers:
+    n, o = y.shape
+    k = np.asarray(kernel)
+    kx = None  # the test-train trace kernel
+    fc = train_mse = test_mse = gap = gap_steps = None
+    kernel_used = "trace"
+    if lr is not None:
+        f = np.asarray(net(x)).reshape(n, o)
+        ft = None if xt is None else np.asarray(net(xt)).reshape(len(xt), o)
+        if n * o <= full_rows:
+            k_fc = ntk(net, x, outputs="full", **options)
+            kx_fc = None if xt is None else ntk(net, xt, x, outputs="full", **options)
+            kx = None if kx_fc is None else np.einsum("ijaa->ij", np.asarray(kx_fc))
+        else:
+            cautions.items.append(PER_OUTPUT_NOTE.format(step=step, o=o, rows=n * o,
+                                                         limit=full_rows))
+            k_fc = per_output_kernel(_trace_kernel(k, o))
+            kx = None if xt is None else np.asarray(ntk(net, xt, x, outputs="trace", **options))
+            kx_fc = None if kx is None else per_output_kernel(_trace_kernel(kx, o))
+        offsets = [] if later is None else [t - step for t, _ in later if t - step <= horizon]
+        fc = forecast(k_fc, y, f, lr=lr, steps=_forecast_grid(horizon, offsets),
+                      k_test_train=kx_fc, f0_test=ft, y_test=yt, loss=loss, progress=False)
+        kernel_used = fc.kernel
+        train_mse = _mse(fc.train_outputs, y)
+        test_mse = None if yt is None else _mse(fc.test_outputs, yt)
+        if later is not None:
+            kept = [(t, out) for t, out in later if t - step <= horizon]
+            at = np.searchsorted(fc.steps, [t - step for t, _ in kept])
+            gap_steps = np.asarray([t for t, _ in kept], dtype=np.int64)
+            gap = output_gap(np.stack([out for _, out in kept]), fc.train_outputs[at],
+                             scale=float(np.linalg.norm(f - y)), steps=gap_steps)
+    elif xt is not None:
+        kx = np.asarray(ntk(net, xt, x, outputs="trace", **options))
+    spec = spectrum(kernel, num_examples=n)
+    scale = float(np.mean(np.diag(k)))
+    grid = scale * np.logspace(*RIDGE_DECADES, ridges)
+    est = risk(k, y, ridges=grid)
+    r = est.best["loo"]
+    i = int(np.flatnonzero(est.ridges == r)[0])
+    mse_r = acc_r = held = None
+    if kx is not None:  # kernel ridge on the test set at every ridge of the grid (R, M, O)
+        pred = ridge_fit(k, y, ridge=est.ridges, k_test_train=kx).test_predictions
+        held = _mse(pred, yt[None])
+        mse_r = float(held[i])
+        acc_r = None if labels_t is None else float(np.mean(np.argmax(pred[i], 1) == labels_t))
+    return CheckpointAnswers(
+        step=step, kernel=kernel_used, kernel_dtype=str(k.dtype), forecast=fc,
+        train_mse=train_mse, test_mse=test_mse, gap=gap, gap_steps=gap_steps, spectrum=spec,
+        alignment=alignment(k, y), risk=est, ridge=float(r), loo=float(est.loo[i]),
+        gcv=float(est.gcv[i]), test_mse_ridge=mse_r, test_accuracy_ridge=acc_r,
+        test_mse_by_ridge=held,
+    )
+
+
+def _trace_kernel(k: np.ndarray, o: int) -> KernelArray:
+    """A plain trace kernel told its kind again (stacking over checkpoints dropped it)."""
+    return KernelArray(k, kind="trace", num_outputs=o)
+
+
+# -- JSON and HTML --------------------------------------------------------------------------------
+def _plain(value):
+    """Plain JSON values: arrays to lists, non-finite floats to None."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return _plain(value.tolist())
+    if isinstance(value, np.generic):
+        return _plain(value.item())
+    if isinstance(value, float):
+        return value if np.isfinite(value) else None
+    return value
+
+
+def _rank_numbers(r: FeatureRank) -> dict:
+    names = ("num_examples", "num_features", "rank", "full_rank", "sigma_max", "sigma_min",
+             "tol", "margin", "layer", "precision", "reliable", "verdict")
+    return {k: getattr(r, k) for k in names if hasattr(r, k)}
+
+
+def _answers_numbers(a: CheckpointAnswers) -> dict:
+    fc = a.forecast
+    spec = a.spectrum
+    return {
+        "step": a.step, "kernel": a.kernel, "kernel_dtype": a.kernel_dtype,
+        "forecast": None if fc is None else {
+            "steps_after": fc.steps, "lr": fc.lr, "loss": fc.loss, "train_mse": a.train_mse,
+            "test_mse": a.test_mse, "train_accuracy": fc.train_accuracy,
+            "test_accuracy": fc.test_accuracy, "max_stable_lr": fc.max_stable_lr,
+            "stable": fc.stable,
+            "gap": a.gap, "gap_steps": a.gap_steps,
+        },
+        "spectrum": {"eigenvalues": spec.eigenvalues, "effective_rank": spec.effective_rank,
+                     "condition_number": spec.condition_number,
+                     "numerical_rank": spec.numerical_rank},
+        "alignment": a.alignment,
+        "risk": {"ridges": a.risk.ridges, "loo": a.risk.loo, "gcv": a.risk.gcv,
+                 "kare": a.risk.kare, "agree": a.risk.agree, "loo_over_gcv": a.risk.ratio,
+                 "ridge": a.ridge, "chosen_by": "loo", "loo_at_ridge": a.loo,
+                 "gcv_at_ridge": a.gcv, "test_mse": a.test_mse_ridge,
+                 "test_accuracy": a.test_accuracy_ridge,
+                 "test_mse_by_ridge": a.test_mse_by_ridge},
+    }
+
+
+def _png(fig) -> str:
+    return base64.b64encode(plots.png(fig, dpi=80)).decode("ascii")
+
+
+def _table(header: Sequence[str], rows) -> str:
+    head = "".join(f"<th>{html.escape(h)}</th>" for h in header)
+    body = "".join("<tr>" + "".join(f"<td>{html.escape(_cell(c))}</td>" for c in row) + "</tr>"
+                   for row in rows)
+    return f"<table><tr>{head}</tr>{body}</table>"
+
+
+def _cell(value) -> str:
+    if value is None:
+        return "—"
+    if isinstance(value, float | np.floating):
+        return f"{float(value):.4g}"
+    return str(value)
+
+
+def _html(r: RunAnalysis) -> str:
+    d = r.drift
+    parts = [
+        "<h1>Training run: kernels at the checkpoints</h1>",
+        f"<p><b>{html.escape(r.verdict)}</b></p>",
+        f"<p>{r.num_train} training examples, {r.num_test} test examples, {r.num_outputs} "
+        f"outputs; kernels in {html.escape(r.dtype)}. Which kernel each answer used: "
+        + html.escape("; ".join(f"{k}: {v}" for k, v in r.kinds.items())) + ".</p>",
+    ]
+    if r.cautions:
+        parts.append("<h2>Cautions</h2><ul>" + "".join(
+            f"<li>{html.escape(c)}</li>" for c in r.cautions) + "</ul>")
+    parts.append(f'<h2>Overview</h2><img src="data:image/png;base64,{_png(r.plot())}">')
+    spread = d.laziness.spread
+    parts.append("<h2>Drift</h2>" + _table(
+        ("step", "relative change", "distance", "alignment", "effective rank", "feature rank"),
+        [(int(s), c, dist, a, e, None if fr is None else f"{fr.rank} of {fr.num_examples}")
+         for s, c, dist, a, e, fr in zip(d.steps, d.relative_change, d.distance_to_initial,
+                                         d.alignment, d.effective_rank, r.feature_ranks)]))
+    parts.append('<img src="data:image/png;base64,' + _png(plots.drift_figure(
+        d.steps, relative_change=d.relative_change, distance=d.distance_to_initial,
+        alignment=d.alignment, threshold=d.threshold,
+        spread=None if spread is None else (spread.relative_change, spread.distance))) + '">')
+    parts.append("<h2>Parameter groups</h2>" + _table(
+        ("group", "relative change", "share of trace, first", "share of trace, last", "moved"),
+        [(g.group, g.relative_change, g.share_first, g.share_last, g.moved) for g in r.groups]))
+    parts.append("<h2>At the chosen checkpoints</h2>" + _table(
+        ("step", "forecast kernel", "forecast train MSE at end", "forecast test MSE at end",
+         "LOO ridge", "LOO", "GCV", "kernel ridge test MSE", "kernel ridge test accuracy"),
+        [(a.step, a.kernel, None if a.train_mse is None else a.train_mse[-1],
+          None if a.test_mse is None else a.test_mse[-1], a.ridge, a.loo, a.gcv,
+          a.test_mse_ridge, a.test_accuracy_ridge) for a in r.checkpoints]))
+    for a in r.checkpoints:
+        if a.test_mse_by_ridge is None:
+            continue
+        fig = plots.risk_figure(a.risk.ridges, gcv=a.risk.gcv, kare=a.risk.kare, loo=a.risk.loo,
+                                heldout=a.test_mse_by_ridge, chosen=a.ridge)
+        parts.append(f"<p>Kernel ridge on the kernel at step {a.step}:</p>"
+                     f'<img src="data:image/png;base64,{_png(fig)}">')
+    style = ("<style>body{font-family:sans-serif;max-width:1000px;margin:auto}"
+             "table{border-collapse:collapse}td,th{border:1px solid #ccc;padding:2px 6px}</style>")
+    return ("<!doctype html><html><head><meta charset='utf-8'><title>ntkcalc: training run"
+            f"</title>{style}</head><body>" + "\n".join(parts) + "</body></html>")

@@ -1,0 +1,231 @@
+"""The training-run workflow end to end, on a real run: a small flax MLP trained on scikit-learn's
+digits with optax, orbax checkpoints, then `analyse_run` and its written report.
+
+Every number of the report is checked against an independent computation:
+
+- kernels recomputed with `ntkcalc.ntk` on Nets built by hand from the parameters kept in memory
+  during training, and the initial one against the dense ``jax.jacrev`` reference
+  (tests/helpers.py);
+- alignment by its formula, centered kernel-target alignment ``⟨HKH, HYYᵀH⟩_F / (‖HKH‖_F
+  ‖HYYᵀH‖_F)`` (Cortes, Mohri & Rostamizadeh, "Algorithms for learning kernels based on centered
+  alignment", JMLR 13, 2012), evaluated in numpy;
+- drift distance ``1 − ⟨K_t, K_0⟩_F / (‖K_t‖_F ‖K_0‖_F)`` and relative change
+  ``‖K_t − K_0‖_F / ‖K_0‖_F`` by their definitions (Fort et al., NeurIPS 2020, arXiv:2010.15110);
+- the forecast from a later checkpoint against optax SGD on the model linearized around that
+  checkpoint with ``jax.jvp`` (Lee et al., NeurIPS 2019, arXiv:1902.06720), train and test;
+- the test error of kernel ridge against scikit-learn's ``KernelRidge(kernel="precomputed")``;
+- the interpolation check against ``numpy.linalg.matrix_rank`` of ``[tanh(xW + b), 1]``;
+- each parameter group's kernel against `ntkcalc.ntk` restricted to that group's parameters.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+
+import flax.linen as nn
+import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+import orbax.checkpoint as ocp
+import pytest
+from helpers import assert_close, f64, reduce_mode, reference_full
+from sklearn.datasets import load_digits
+from sklearn.kernel_ridge import KernelRidge
+
+import ntkcalc
+from ntkcalc._workflows.study import CheckpointAnswers, RunAnalysis, analyse_run
+
+N_TRAIN, N_TEST, WIDTH, STEPS, LR = 120, 80, 64, 40, 0.04  # below 2N/λ_max at init
+SAVED = (0, 20, 40)
+
+
+class _Mlp(nn.Module):
+    """One tanh hidden layer of ``WIDTH`` units and a linear readout over the 10 digits."""
+
+    @nn.compact
+    def __call__(self, x):
+        return nn.Dense(10, name="readout")(nn.tanh(nn.Dense(WIDTH, name="hidden")(x)))
+
+
+def _mse_loss(f, y):
+    """``(1/N) Σ_i ½‖f_i − y_i‖²``, the convention of `ntkcalc.forecast`."""
+    return 0.5 * jnp.sum((f - y) ** 2) / f.shape[0]
+
+
+def _sgd(loss, params, steps):
+    """Full-batch optax SGD at ``LR``; the parameters after each step, keyed by step."""
+    opt = optax.sgd(LR)
+    state = opt.init(params)
+    grad = jax.jit(jax.grad(loss))
+    kept = {0: params}
+    for t in range(1, steps + 1):
+        updates, state = opt.update(grad(params), state)
+        params = optax.apply_updates(params, updates)
+        kept[t] = params
+    return kept
+
+
+@functools.cache
+def _run(tmp: str):
+    """Train on digits, save orbax checkpoints, run the workflow and write its report."""
+    digits = load_digits()
+    x_all, labels_all = digits.data / 16.0, digits.target
+    x, labels = x_all[:N_TRAIN], labels_all[:N_TRAIN]
+    xt, labels_t = x_all[N_TRAIN:N_TRAIN + N_TEST], labels_all[N_TRAIN:N_TRAIN + N_TEST]
+    y = np.eye(10)[labels]
+    model = _Mlp()
+    variables = f64(model.init(jax.random.key(0), jnp.asarray(x[:1])))
+    kept = _sgd(lambda p: _mse_loss(model.apply({"params": p}, x), y), variables["params"], STEPS)
+    options = ocp.CheckpointManagerOptions(max_to_keep=None, enable_async_checkpointing=False)
+    with ocp.CheckpointManager(f"{tmp}/ckpt", options=options) as manager:
+        for s in SAVED:
+            manager.save(s, args=ocp.args.StandardSave({"params": kept[s]}))
+        manager.wait_until_finished()
+    result = analyse_run(f"{tmp}/ckpt", x, labels, module=model, example=x[:1], x_test=xt,
+                         y_test=labels_t, lr=LR, forecast_from=[0, 20], full_batch_gd=True)
+    html_path, json_path = result.write(f"{tmp}/report")
+    with open(json_path, encoding="utf-8") as fh:
+        report = json.load(fh)
+    net = ntkcalc.Net.from_linen(model, variables)
+    hand = {s: net.replace(params=kept[s]) for s in SAVED}  # built by hand, not from disk
+    data = {"x": x, "y": y, "xt": xt, "yt": np.eye(10)[labels_t], "labels_t": labels_t}
+    return result, report, html_path, hand, kept, data
+
+
+@pytest.fixture(scope="module")
+def run(tmp_path_factory):
+    return _run(str(tmp_path_factory.mktemp("study")))
+
+
+def _kernels(hand, data):
+    return {s: np.asarray(ntkcalc.ntk(n, data["x"], progress=False)) for s, n in hand.items()}
+
+
+def test_report_kernels_match_direct_computation(run):
+    result, report, _, hand, _, data = run
+    assert isinstance(result, RunAnalysis)
+    assert result.steps.tolist() == list(SAVED) and report["steps"] == list(SAVED)
+    kernels = _kernels(hand, data)
+    for i, s in enumerate(SAVED):
+        assert_close(result.drift.kernels[i], kernels[s], rtol=1e-10)
+    # the initial kernel against the dense whole-batch jax.jacrev reference
+    assert_close(kernels[0], reduce_mode(reference_full(hand[0], data["x"]), "trace"), rtol=1e-10)
+    assert report["dtype"] == "float64" and "trace" in report["kinds"][
+        "drift, alignment, spectrum, risk, groups"]
+
+
+def test_alignment_and_drift_by_their_formulas(run):
+    result, report, _, hand, _, data = run
+    kernels = _kernels(hand, data)
+    table = report["drift"]["table"]
+    h = np.eye(N_TRAIN) - 1.0 / N_TRAIN  # centering H = I − 11ᵀ/n
+    target = h @ data["y"] @ data["y"].T @ h
+    k0 = kernels[0]
+    for i, s in enumerate(SAVED):
+        kc = h @ kernels[s] @ h
+        want = np.sum(kc * target) / (np.linalg.norm(kc) * np.linalg.norm(target))
+        assert table["alignment"][i] == pytest.approx(want, rel=1e-9)
+        cos = np.sum(kernels[s] * k0) / (np.linalg.norm(kernels[s]) * np.linalg.norm(k0))
+        assert table["distance_to_initial"][i] == pytest.approx(1 - cos, abs=1e-12)
+        assert table["relative_change"][i] == pytest.approx(
+            np.linalg.norm(kernels[s] - k0) / np.linalg.norm(k0), rel=1e-9, abs=1e-14)
+    assert table["relative_change"][-1] > 0  # training did move the kernel
+    assert report["laziness"]["forecast_gap"] is not None  # full-batch GD: the gap is measured
+    assert result.verdict == report["verdict"] == result.laziness.sentence
+
+
+def _linearized_sgd(net, x, y, steps):
+    """optax SGD on ``f_lin(θ) = f(θ_t) + J_t (θ − θ_t)`` (jax.jvp around the Net's params)."""
+    theta_t = net.params
+
+    def f_lin(p, inputs):
+        delta = jax.tree_util.tree_map(lambda a, b: a - b, p, theta_t)
+        f, df = jax.jvp(lambda q: net.apply(q, inputs), (theta_t,), (delta,))
+        return f + df
+
+    kept = _sgd(lambda p: _mse_loss(f_lin(p, x), y), theta_t, steps)
+    return lambda t, inputs: np.asarray(f_lin(kept[t], inputs))
+
+
+def test_forecast_from_a_later_checkpoint_matches_linearized_training(run):
+    result, report, _, hand, _, data = run
+    later = result.checkpoints[1]
+    assert isinstance(later, CheckpointAnswers) and later.step == 20
+    assert later.kernel == "full" and later.forecast.stable
+    horizon = int(later.forecast.steps[-1])
+    assert horizon == STEPS  # default horizon: the run's length
+    lin = _linearized_sgd(hand[20], data["x"], data["y"], horizon)
+    assert_close(later.forecast.train_outputs[-1], lin(horizon, data["x"]), rtol=1e-8)
+    assert_close(later.forecast.test_outputs[-1], lin(horizon, data["xt"]), rtol=1e-8)
+    fc = report["checkpoints"][1]["forecast"]
+    assert fc["train_mse"][-1] == pytest.approx(
+        np.mean((lin(horizon, data["x"]) - data["y"]) ** 2), rel=1e-8)
+    assert fc["test_mse"][-1] == pytest.approx(
+        np.mean((lin(horizon, data["xt"]) - data["yt"]) ** 2), rel=1e-8)
+    # the gap at the checkpoint itself is 0; at step 40 it compares the run with the forecast
+    assert fc["gap_steps"] == [20, 40] and fc["gap"][0] == pytest.approx(0.0, abs=1e-12)
+    f20, f40 = (np.asarray(hand[s](data["x"])) for s in (20, 40))
+    want = np.linalg.norm(f40 - lin(20, data["x"])) / np.linalg.norm(f20 - data["y"])
+    assert fc["gap"][1] == pytest.approx(want, rel=1e-8)
+
+
+def test_test_error_matches_scikit_learn_kernel_ridge(run):
+    result, report, _, hand, _, data = run
+    last = report["checkpoints"][1]
+    k = np.asarray(ntkcalc.ntk(hand[20], data["x"], progress=False))
+    kx = np.asarray(ntkcalc.ntk(hand[20], data["xt"], data["x"], progress=False))
+    ridge = last["risk"]["ridge"]
+    assert ridge == result.checkpoints[1].risk.best["loo"]
+    pred = KernelRidge(alpha=ridge, kernel="precomputed").fit(k, data["y"]).predict(kx)
+    assert last["risk"]["test_mse"] == pytest.approx(np.mean((pred - data["yt"]) ** 2), rel=1e-8)
+    assert last["risk"]["test_accuracy"] == pytest.approx(
+        np.mean(np.argmax(pred, 1) == data["labels_t"]))
+
+
+def test_feature_rank_and_groups_match_direct_computation(run):
+    result, report, _, hand, kept, data = run
+    for s, r in zip(SAVED, report["feature_rank"], strict=True):
+        p = kept[s]["hidden"]
+        h = np.tanh(data["x"] @ np.asarray(p["kernel"]) + np.asarray(p["bias"]))
+        assert r["rank"] == np.linalg.matrix_rank(np.concatenate([h, np.ones((N_TRAIN, 1))], 1))
+        assert not r["full_rank"]  # 65 features < 120 examples: interpolation impossible
+    groups = {g["group"]: g for g in report["groups"]}
+    assert sorted(groups) == ["hidden", "readout"]
+    total = {s: np.trace(np.asarray(ntkcalc.ntk(hand[s], data["x"], progress=False)))
+             for s in (0, 40)}
+    for name, g in groups.items():
+        k0, k1 = (np.asarray(ntkcalc.ntk(hand[s], data["x"], params=f"^{name}", progress=False))
+                  for s in (0, 40))
+        assert g["relative_change"] == pytest.approx(
+            np.linalg.norm(k1 - k0) / np.linalg.norm(k0), rel=1e-9)
+        assert g["share_first"] == pytest.approx(np.trace(k0) / total[0], rel=1e-9)
+        assert g["share_last"] == pytest.approx(np.trace(k1) / total[40], rel=1e-9)
+
+
+def test_report_files_and_plot(run):
+    result, report, html_path, *_ = run
+    with open(html_path, encoding="utf-8") as fh:
+        text = fh.read()
+    assert text.count("data:image/png;base64,") >= 3 and result.verdict.split(":")[0] in text
+    assert json.loads(result.to_json()) == report
+    assert len(result.plot().axes) == 4
+
+
+def test_rejects_bad_arguments(tmp_path):
+    net = ntkcalc.Net(lambda p, x: x @ p, np.ones((3, 2)))
+    pairs = [(0, net), (1, net.replace(params=2 * np.ones((3, 2))))]
+    x = np.ones((4, 3))
+    with pytest.raises(TypeError, match="source"):
+        analyse_run([net, net], x, np.zeros(4, int))
+    with pytest.raises(ValueError, match="increasing"):
+        analyse_run(pairs[::-1], x, np.zeros(4, int))
+    with pytest.raises(ValueError, match="forecast_from"):
+        analyse_run(pairs, x, np.zeros(4, int), forecast_from=[5])
+    with pytest.raises(ValueError, match="x_test"):
+        analyse_run(pairs, x, np.zeros(4, int), x_test=x)
+    with pytest.raises(ValueError, match="lr"):
+        analyse_run(pairs, x, np.zeros(4, int), full_batch_gd=True)
+    with pytest.raises(ValueError, match="module"):
+        analyse_run(pairs, x, np.zeros(4, int), module=object())
