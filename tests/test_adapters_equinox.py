@@ -153,6 +153,18 @@ def test_replace_reuses_compiled_kernel_and_state_matters():
     assert_close(ntkcalc.ntk(moved, x1, progress=False), want)
 
 
+def test_a_later_checkpoint_through_replace():
+    # equinox's own split of a trained copy (different weights, training mode) fits `replace`:
+    # same compiled call, and the kernel equals the reference at the new parameters.
+    net, x1, _ = case("batchnorm-state")
+    model, _ = _stateful()
+    trained = jax.tree_util.tree_map(lambda a: a * 0.7 if eqx.is_inexact_array(a) else a, model)
+    moved = net.replace(params=eqx.filter(trained, eqx.is_inexact_array))
+    assert moved.call is net.call
+    want = np.einsum("ijaa->ij", reference_full(moved, x1, jit=True))  # jax.jacrev reference
+    assert_close(ntkcalc.ntk(moved, x1, progress=False), want)
+
+
 def test_by_layer_at_depth_two_splits_the_mlp():
     # eqx.nn.MLP keeps its layers in one list: depth 1 is one group, depth 2 one per layer.
     # Each group equals the reference restricted to its leaves; the groups sum to the kernel.
@@ -185,6 +197,29 @@ def test_errors_name_the_constructor():
         ntkcalc.Net.from_equinox(stateful, {"mean": 0})
     with pytest.raises(TypeError, match="`model` must be a callable equinox Module, got dict"):
         ntkcalc.Net.from_equinox({"w": np.ones(2)})
+
+
+class WholeBatch(eqx.Module):
+    """Takes the whole batch and needs a keyword: f(x) = tanh(x W) v · scale."""
+
+    w: jax.Array
+    v: jax.Array
+
+    def __call__(self, x, *, scale):
+        return jnp.tanh(x @ self.w) @ self.v * scale
+
+
+def test_batched_model_and_call_keywords():
+    rng = np.random.default_rng(4)
+    model = WholeBatch(jnp.asarray(rng.normal(size=(3, 5))), jnp.asarray(rng.normal(size=(5, 2))))
+    with pytest.raises(TypeError, match=r"WholeBatch.__call__ requires \['scale'\], which the "
+                                        r"Net does not pass"):
+        ntkcalc.Net.from_equinox(model, batched=True)
+    net = ntkcalc.Net.from_equinox(model, batched=True, scale=2.0)
+    x = rng.normal(size=(4, 3))
+    np.testing.assert_allclose(net(x), model(x, scale=2.0), rtol=1e-13)
+    want = np.einsum("ijaa->ij", reference_full(net, x))  # jax.jacrev reference
+    assert_close(ntkcalc.ntk(net, x, progress=False), want)
 
 
 def test_partitioned_by_hand_still_works():

@@ -4,15 +4,17 @@ An equinox model is a pytree that mixes what is trained (floating arrays) with w
 (activation functions, sizes, integer buffers, ``eqx.nn.StateIndex`` markers). The Net splits it
 with ``eqx.partition``:
 
-- ``params``: the inexact (floating or complex) arrays, ``eqx.is_inexact_array``;
+- ``params``: the inexact (floating) arrays, ``eqx.is_inexact_array``;
 - ``state``: ``(frozen, model_state)``: the model's other arrays (integer or boolean buffers)
   and the ``eqx.nn.State`` of a stateful model (``eqx.nn.make_with_state``), both passed to the
   compiled kernel as data;
 - the rest (functions, sizes, the tree structure) is held in ``call``'s closure.
 
-So ``net.replace(params=...)`` with the parameters of a later checkpoint reuses the compiled
-kernel. Equinox layers map one example; the Net maps them over the batch with ``jax.vmap``
-(``batched=True`` for a model that takes the whole batch).
+This is equinox's own split, so the parameters of a later checkpoint of the same model,
+``eqx.filter(trained, eqx.is_inexact_array)``, have the same tree structure, and
+``net.replace(params=...)`` with them reuses the compiled kernel. Equinox layers map one
+example; the Net maps them over the batch with ``jax.vmap`` (``batched=True`` for a model that
+takes the whole batch).
 """
 
 from __future__ import annotations
@@ -35,7 +37,7 @@ def _call_equinox(static, stateful, batched, kwargs, params, state, x):
     import equinox as eqx
 
     frozen, model_state = state
-    model = eqx.combine(params, frozen, static, is_leaf=_is_state_index)
+    model = eqx.combine(params, frozen, static)
     kwargs = dict(kwargs)
 
     def run(xi):
@@ -107,8 +109,8 @@ def from_equinox(model, state=None, *, batched: bool = False, inference: bool = 
     _check_call_arguments(model, state is not None, call_kwargs)
     if inference:
         model = eqx.nn.inference_mode(model, True)
-    params, rest = eqx.partition(model, eqx.is_inexact_array, is_leaf=_is_state_index)
-    frozen, static = eqx.partition(rest, eqx.is_array, is_leaf=_is_state_index)
+    params, rest = eqx.partition(model, eqx.is_inexact_array)
+    frozen, static = eqx.partition(rest, eqx.is_array)
     call = functools.partial(_call_equinox, static, state is not None, bool(batched),
                              tuple(sorted(call_kwargs.items())))
     return Net._make(call, params, (frozen, state), type(model).__name__)

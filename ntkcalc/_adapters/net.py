@@ -240,7 +240,9 @@ class Net:
         ``inference`` (default) the model runs under ``eqx.nn.inference_mode`` (Dropout off,
         BatchNorm running statistics); the caller's model is not modified, and the updated
         state a stateful model returns is discarded. ``call_kwargs`` (e.g. ``key=``) are passed
-        to the model on every call.
+        to the model on every call. ``net.state`` is ``(frozen arrays, state)``. A later
+        checkpoint of the same model reuses the compiled kernels through
+        ``net.replace(params=eqx.filter(trained, eqx.is_inexact_array))``.
         """
         from .equinox import from_equinox
 
