@@ -22,8 +22,10 @@ from ._analysis.alignment import cka as cka
 from ._analysis.alignment import kernel_distance as kernel_distance
 from ._analysis.alignment import task_spectrum as task_spectrum
 from ._analysis.expressivity import FeatureRank as FeatureRank
+from ._analysis.expressivity import FeatureRankSample as FeatureRankSample
 from ._analysis.expressivity import feature_rank as feature_rank
 from ._analysis.expressivity import feature_rank_of as feature_rank_of
+from ._analysis.expressivity import feature_rank_over_inits as feature_rank_over_inits
 from ._analysis.forecast import Forecast as Forecast
 from ._analysis.forecast import forecast as forecast
 from ._analysis.hutchpp import Estimate as Estimate

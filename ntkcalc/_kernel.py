@@ -2,9 +2,13 @@
 
 from __future__ import annotations
 
+import contextlib
+from typing import Literal
+
+import jax
 import numpy as np
 
-from ._engine.options import OUTPUTS_DOC, Method, Outputs
+from ._engine.options import OUTPUTS_DOC, Method, Outputs, check_choice
 from ._engine.planner import prepare
 from ._engine.select import ParamFilter
 from ._kind import KernelArray
@@ -25,7 +29,26 @@ _SCALE_DOC = """\
         progress: show a progress bar over tiles (tqdm, terminal or notebook) once a run lasts
             over a second; log lines go to the ``logging`` logger ``"ntkcalc"`` either way.
         devices: JAX devices of this process to spread tiles over (default all local devices).
-            Forced CPU devices share the same cores and measured no faster than one."""
+            Forced CPU devices share the same cores and measured no faster than one.
+        dtype: the precision of the computation. None follows JAX's x64 switch (float32
+            unless ``jax_enable_x64`` is on). ``"float64"`` casts parameters, state and floating
+            inputs to float64 and traces, compiles and runs this call under
+            ``jax.enable_x64(True)`` only; the global switch is left as it was. Use it for
+            small eigenvalues, ranks and ill-conditioned solves (float32 keeps about 7 digits;
+            docs/cautions.md). ``"float32"`` computes in float32 even when x64 is on. A model
+            that casts to a fixed dtype inside (e.g. ``nn.Dense(..., dtype=jnp.float32)``)
+            still rounds there."""
+
+Precision = Literal["float32", "float64"]
+PRECISIONS = ("float32", "float64")
+
+
+def precision_scope(dtype: Precision | None):
+    """The context a computation at ``dtype`` runs in: ``jax.enable_x64`` for this call only."""
+    if dtype is None:
+        return contextlib.nullcontext()
+    check_choice("dtype", dtype, PRECISIONS)
+    return jax.enable_x64(dtype == "float64")
 
 
 def ntk(
@@ -40,6 +63,7 @@ def ntk(
     store=None,
     progress: bool = True,
     devices=None,
+    dtype: Precision | None = None,
 ):
     r"""The empirical neural tangent kernel Θ(x1, x2) = J(x1) J(x2)ᵀ of ``net`` at its parameters.
 
@@ -66,11 +90,12 @@ def ntk(
         `KernelArray` (a numpy array that remembers its kind: ``k.kind == outputs`` and
         ``k.num_outputs == O``, so analyses can refuse a kernel of the wrong kind) of the shape
         above, or a `StoredKernel` view of it with ``store``: float32, or float64 when JAX x64
-        is enabled. All matmuls run at precision "highest".
+        is enabled or ``dtype="float64"``. All matmuls run at precision "highest".
     """
-    req = prepare(net, x1, x2, outputs=outputs, method=method, params=params)
-    kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
-                         progress=progress, devices=devices)
+    with precision_scope(dtype):
+        req = prepare(net, x1, x2, outputs=outputs, method=method, params=params)
+        kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
+                             progress=progress, devices=devices)
     return _tagged(kernels[0], outputs, req.num_outputs)
 
 
@@ -87,17 +112,22 @@ def ntk_by_layer(
     progress: bool = True,
     devices=None,
     depth: int = 1,
+    dtype: Precision | None = None,
 ) -> dict[str, np.ndarray]:
     """The kernel split by top-level parameter group: ``{group name: kernel}``.
 
     Groups are the first ``depth`` keys of each parameter's dotted path: ``depth=1`` gives
     ``"Dense_0"``, ``"encoder"``; ``depth=2`` splits an ``eqx.nn.MLP``'s ``"layers"`` into
-    ``"layers.0"``, ``"layers.1"``, ... (a name with fewer keys is its own group). Their sum is ``ntk(net, x1, x2, ...)`` with the same options; computed in one pass. With ``store``
+    ``"layers.0"``, ``"layers.1"``, ... (a name with fewer keys is its own group). Their sum is
+    ``ntk(net, x1, x2, ...)`` with the same options; computed in one pass. With ``store``
     the groups share one zarr array (groups, N1, N2, ...) and each value is a `StoredKernel` view.
+    ``dtype`` as in `ntk` (``"float64"`` without the global x64 switch).
     """
-    req = prepare(net, x1, x2, outputs=outputs, method=method, params=params, by_layer=depth)
-    kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
-                         progress=progress, devices=devices)
+    with precision_scope(dtype):
+        req = prepare(net, x1, x2, outputs=outputs, method=method, params=params,
+                      by_layer=depth)
+        kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
+                             progress=progress, devices=devices)
     return {name: _tagged(k, outputs, req.num_outputs)
             for name, k in zip(req.selection.group_names, kernels, strict=True)}
 

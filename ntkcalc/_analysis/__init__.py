@@ -8,6 +8,7 @@ from .alignment import task_spectrum as task_spectrum
 from .expressivity import FeatureRank as FeatureRank
 from .expressivity import feature_rank as feature_rank
 from .expressivity import feature_rank_of as feature_rank_of
+from .expressivity import feature_rank_over_inits as feature_rank_over_inits
 from .forecast import Forecast as Forecast
 from .forecast import forecast as forecast
 from .hutchpp import Estimate as Estimate
