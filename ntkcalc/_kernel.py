@@ -30,6 +30,11 @@ _SCALE_DOC = """\
             over a second; log lines go to the ``logging`` logger ``"ntkcalc"`` either way.
         devices: JAX devices of this process to spread tiles over (default all local devices).
             Forced CPU devices share the same cores and measured no faster than one.
+        spot_check: how many kernel entries to recompute independently once the kernel is done
+            (0: off). Each is rebuilt from its definition with ``jax.jacrev`` of the model on
+            its two examples alone (no vmap, blocking or structured rules) and compared; a
+            mismatch raises RuntimeError. Catches a miscompiled or wrong kernel
+            (docs/cautions.md) for about one Jacobian per distinct example.
         dtype: the precision of the computation. None follows JAX's x64 switch (float32
             unless ``jax_enable_x64`` is on). ``"float64"`` casts parameters, state and floating
             inputs to float64 and traces, compiles and runs this call under
@@ -63,6 +68,7 @@ def ntk(
     store=None,
     progress: bool = True,
     devices=None,
+    spot_check: int = 0,
     dtype: Precision | None = None,
 ):
     r"""The empirical neural tangent kernel Θ(x1, x2) = J(x1) J(x2)ᵀ of ``net`` at its parameters.
@@ -95,7 +101,7 @@ def ntk(
     with precision_scope(dtype):
         req = prepare(net, x1, x2, outputs=outputs, method=method, params=params)
         kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
-                             progress=progress, devices=devices)
+                             progress=progress, devices=devices, spot_check=spot_check)
     return _tagged(kernels[0], outputs, req.num_outputs)
 
 
@@ -111,6 +117,7 @@ def ntk_by_layer(
     store=None,
     progress: bool = True,
     devices=None,
+    spot_check: int = 0,
     depth: int = 1,
     dtype: Precision | None = None,
 ) -> dict[str, np.ndarray]:
@@ -127,7 +134,7 @@ def ntk_by_layer(
         req = prepare(net, x1, x2, outputs=outputs, method=method, params=params,
                       by_layer=depth)
         kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
-                             progress=progress, devices=devices)
+                             progress=progress, devices=devices, spot_check=spot_check)
     return {name: _tagged(k, outputs, req.num_outputs)
             for name, k in zip(req.selection.group_names, kernels, strict=True)}
 

@@ -179,3 +179,38 @@ def test_python_m_help():
                               capture_output=True, text=True, timeout=120)
         assert done.returncode == 0, done.stderr
         assert "example:" in done.stdout and "ntkcalc kernel" in done.stdout
+
+
+# -- no traceback for a user mistake (issue 12) ---------------------------------------------------
+
+
+def test_runtime_errors_are_one_line(files, capsys):
+    # Before: MemoryError and PermissionError/NotADirectoryError escaped as tracebacks.
+    tmp_path, _, _ = files
+    code, _, err = _run(capsys, *_kernel_args(tmp_path, **{"--memory": "10"}))
+    _one_line_error(code, err, status=1)
+    assert "`memory`='10' (10 B) is too small" in err
+    (tmp_path / "afile").write_text("not a directory")
+    code, _, err = _run(capsys, *_kernel_args(tmp_path, **{"--store": tmp_path / "afile/k.zarr"}))
+    _one_line_error(code, err, status=1)
+    assert "is not writable" in err
+
+
+def test_report_out_on_a_file_is_one_line(files, capsys):
+    tmp_path, _, _ = files
+    code, _, err = _run(capsys, *_kernel_args(tmp_path))
+    assert code == 0, err
+    (tmp_path / "afile").write_text("not a directory")
+    code, _, err = _run(capsys, "report", tmp_path / "k.zarr", "--out", tmp_path / "afile")
+    _one_line_error(code, err, status=1)
+    assert "afile" in err and "writable directory" in err
+
+
+def test_inputs_of_the_wrong_width_are_named(files, capsys):
+    # Before: only the checkpoint was blamed; the linen variables are shaped from --x.
+    tmp_path, _, _ = files
+    np.save(tmp_path / "wide.npy", np.ones((5, 4)))
+    code, _, err = _run(capsys, *_kernel_args(tmp_path, **{"--x": tmp_path / "wide.npy",
+                                                           "--key": None}))
+    _one_line_error(code, err, status=1)
+    assert "--x has the wrong feature shape" in err and "(4,)" in err

@@ -317,3 +317,211 @@ def test_progress_bar_counts_tiles_to_compute(model, tmp_path, monkeypatch, prog
     assert all(disabled is (not progress) for _, disabled in bars)
     if progress:  # a disabled bar does not count
         assert [b.n for b, _ in bars] == [6, 0]
+
+
+# -- concurrent processes, damaged metadata, a full disk (issue 12) ----------------------------
+
+
+def test_independent_runs_on_one_store_neither_corrupt_nor_duplicate(model, tmp_path,
+                                                                     monkeypatch):
+    # Two runs without jax.distributed: B (parameters 2θ) checks the empty store, then stalls
+    # before writing its fingerprint while A (θ) runs; then B goes on. Before the store lock, A
+    # filled the store, B overwrote the fingerprint with 2θ's and reused every tile of θ's kernel
+    # as its own. Now B holds the store until it is done and A is refused. Reference: each
+    # kernel computed in memory.
+    import threading
+
+    import jax
+    from zarr.core.attributes import Attributes
+
+    net, x, _ = model
+    nets = {"A": net, "B": net.replace(params=jax.tree_util.tree_map(lambda p: 2 * p,
+                                                                      net.params))}
+    real = Attributes.__setitem__
+    b_stalled, a_done = threading.Event(), threading.Event()
+
+    def stalling_setitem(self, key, value):
+        if key == "ntkcalc" and threading.current_thread().name == "B":
+            b_stalled.set()
+            a_done.wait(timeout=5)  # without a lock A finishes meanwhile
+        real(self, key, value)
+
+    monkeypatch.setattr(Attributes, "__setitem__", stalling_setitem)
+    store = tmp_path / "k.zarr"
+    results = {}
+
+    def run(name):
+        try:
+            results[name] = np.asarray(ntkcalc.ntk(nets[name], x, outputs="full", store=store,
+                                                   memory=SMALL, progress=False))
+        except ValueError as e:
+            results[name] = e
+        finally:
+            if name == "A":
+                a_done.set()
+
+    b = threading.Thread(target=run, args=("B",), name="B")
+    b.start()
+    assert b_stalled.wait(timeout=120)
+    a = threading.Thread(target=run, args=("A",), name="A")
+    a.start()
+    a.join()
+    b.join()
+    assert isinstance(results["A"], ValueError), "A ran into a store B had claimed"
+    assert "holds a different kernel" in str(results["A"])
+    want = ntkcalc.ntk(nets["B"], x, outputs="full", memory=SMALL, progress=False)
+    assert_close(results["B"], want, rtol=1e-12)
+    again = ntkcalc.ntk(nets["B"], x, outputs="full", store=store, memory=SMALL, progress=False)
+    assert again.info.reused == again.info.tiles
+    np.testing.assert_array_equal(np.asarray(again), results["B"])
+
+
+def test_same_run_twice_at_once_computes_each_tile_once(model, tmp_path):
+    import threading
+
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    views = []
+    threads = [threading.Thread(target=lambda: views.append(ntkcalc.ntk(
+        net, x, outputs="full", store=store, memory=SMALL, progress=False))) for _ in range(2)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert sorted(v.info.computed for v in views) == [0, views[0].info.tiles]
+    np.testing.assert_array_equal(np.asarray(views[0]), np.asarray(views[1]))
+
+
+def _zarr_json(path):
+    return path / "zarr.json"
+
+
+def _edit_fingerprint(path, edit):
+    meta = json.loads(_zarr_json(path).read_text())
+    edit(meta["attributes"])
+    _zarr_json(path).write_text(json.dumps(meta))
+
+
+def _set_block(attrs):  # IndexError inside zarr before
+    attrs["ntkcalc"]["fingerprint"]["block"] = 3
+
+
+DAMAGE = {
+    "group-json-garbled": lambda p: _zarr_json(p).write_text("{not json"),
+    "group-json-lost": lambda p: _zarr_json(p).unlink(),
+    "attribute-empty": lambda p: _edit_fingerprint(p, lambda a: a.update(ntkcalc={})),
+    "attribute-lost": lambda p: _edit_fingerprint(p, lambda a: a.pop("ntkcalc")),
+    "field-lost": lambda p: _edit_fingerprint(p, lambda a: a["ntkcalc"]["fingerprint"].clear()),
+    "block-edited": lambda p: _edit_fingerprint(p, _set_block),
+    "kernel-json-garbled": lambda p: _zarr_json(p / "kernel").write_text("]"),
+    "checksums-json-garbled": lambda p: _zarr_json(p / "checksums").write_text('{"a": 1}'),
+}
+
+
+@pytest.mark.parametrize("damage", list(DAMAGE))
+def test_damaged_metadata_is_recomputed(model, tmp_path, caplog, damage):
+    # Before: JSONDecodeError, KeyError, IndexError inside zarr, or "data ntkcalc did not write".
+    # Reference: the uninterrupted kernel (bit-identical after recomputation).
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    want = _uninterrupted(net, x, store)
+    DAMAGE[damage](store)
+    with caplog.at_level("WARNING", logger="ntkcalc"):
+        view = ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, progress=False)
+    assert "is damaged" in caplog.text and "recomputed from scratch" in caplog.text
+    assert view.info.computed == view.info.tiles
+    np.testing.assert_array_equal(np.asarray(view), want)
+
+
+def test_truncated_checksum_chunk_costs_one_tile(model, tmp_path):
+    # Before: every resume failed inside zarr decoding the 3-byte chunk.
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    want = _uninterrupted(net, x, store)
+    chunk = store / "checksums" / "c" / "0" / "1"
+    chunk.write_bytes(chunk.read_bytes()[:3])
+    view = ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, progress=False)
+    assert view.info.computed == 1
+    np.testing.assert_array_equal(np.asarray(view), want)
+
+
+def test_full_disk_is_reported_and_resumes(model, tmp_path, monkeypatch):
+    # ENOSPC injected where zarr writes a file, after 2 tile chunks. Reference: the
+    # uninterrupted kernel, bit-identical after the resume.
+    import errno
+
+    import zarr.storage._local as local
+
+    from ntkcalc._tiles import store as store_module
+
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    want = _uninterrupted(net, x, tmp_path / "u.zarr")
+    real_put = local._put
+    written = [0]
+
+    def full_put(path, value, exclusive=False):
+        if "kernel" in str(path) and "/c/" in str(path):
+            if written[0] >= 2:
+                raise OSError(errno.ENOSPC, "No space left on device")
+            written[0] += 1
+        return real_put(path, value, exclusive=exclusive)
+
+    monkeypatch.setattr(local, "_put", full_put)
+    with pytest.raises(OSError, match=r"the disk is full .*needs about .* more.*run the same "
+                                      r"call again: it resumes") as err:
+        ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, progress=False)
+    assert err.value.errno == errno.ENOSPC and str(store) in str(err.value)
+    # A rerun while the disk is still full says so, not "not writable".
+    real_open = open
+
+    def full_open(path, *a, **k):
+        if ".ntkcalc-write-test" in str(path):
+            raise OSError(errno.ENOSPC, "No space left on device")
+        return real_open(path, *a, **k)
+
+    monkeypatch.setattr("builtins.open", full_open)
+    with pytest.raises(OSError, match=r"the disk is full") as err:
+        ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, progress=False)
+    assert "not writable" not in str(err.value)
+    monkeypatch.setattr("builtins.open", real_open)
+    # Free space is checked against the missing tiles before computing.
+    monkeypatch.setattr(store_module.shutil, "disk_usage",
+                        lambda p: type("Usage", (), {"free": 500})())
+    with pytest.raises(OSError, match=r"free now: 500 B\); it needs about"):
+        ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, progress=False)
+    monkeypatch.undo()
+    view = ntkcalc.ntk(net, x, outputs="full", store=store, memory=SMALL, progress=False)
+    assert view.info.reused >= 1 and view.info.computed < view.info.tiles
+    np.testing.assert_array_equal(np.asarray(view), want)
+
+
+def test_report_reads_a_by_layer_store_as_the_whole_kernel(model, tmp_path):
+    # Before: the report took parameter group 0 for the whole kernel. Reference: in-memory ntk
+    # (the groups of ntk_by_layer partition the parameters, so they sum to it).
+    from ntkcalc._tiles.store import read_verified
+    from ntkcalc._workflows.report import _load_store
+
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    ntkcalc.ntk_by_layer(net, x, store=store, memory=SMALL, progress=False)
+    whole = ntkcalc.ntk(net, x, progress=False)
+    assert_close(read_verified(store), whole, rtol=1e-12)
+    assert_close(_load_store(str(store)), whole, rtol=1e-12)
+    assert read_verified(tmp_path / "nothing.zarr") is None
+
+
+def test_report_verifies_checksums(model, tmp_path):
+    # Before: a corrupted tile (changed symmetrically) went into the report unverified.
+    from ntkcalc._workflows.report import write_report
+
+    net, x, _ = model
+    store = tmp_path / "k.zarr"
+    ntkcalc.ntk(net, x, store=store, memory="20KB", progress=False)
+    import zarr
+
+    kernel = zarr.open_group(store, mode="r+")["kernel"]
+    kernel[0, 0, 1] = kernel[0, 1, 0] = 1e30
+    with pytest.raises(ValueError, match=r"`source`=.* 1 of \d+ tiles are missing or fail their "
+                                         r"checksum"):
+        write_report(store, out=tmp_path / "report")

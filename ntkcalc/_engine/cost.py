@@ -145,9 +145,11 @@ def parse_memory(memory) -> int:
     """Bytes from ``None`` (half the available memory), an int, or a string like ``"1.5GB"``."""
     if memory is None:
         return int(DEFAULT_MEMORY_FRACTION * available_memory())
-    if isinstance(memory, int | float) and not isinstance(memory, bool):
-        if memory <= 0:
-            raise ValueError(f"`memory`={memory!r} must be positive: a byte count or e.g. '2GB'.")
+    if isinstance(memory, int | float | np.integer | np.floating) and not isinstance(
+            memory, bool | np.bool_):
+        if not math.isfinite(memory) or memory <= 0:
+            raise ValueError(f"`memory`={memory!r} must be a positive, finite byte count or a "
+                             "string such as '2GB'.")
         return int(memory)
     if isinstance(memory, str):
         text = memory.strip().upper().replace(" ", "")
@@ -157,7 +159,7 @@ def parse_memory(memory) -> int:
             value = float(num)
         except ValueError:
             value = None
-        if value is not None and value > 0 and unit in _UNITS:
+        if value is not None and math.isfinite(value) and value > 0 and unit in _UNITS:
             return int(value * _UNITS[unit])
     raise ValueError(
         f"`memory`={memory!r} is not a memory size: pass bytes as an int or a string such as "

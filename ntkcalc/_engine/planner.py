@@ -11,6 +11,7 @@ import dataclasses
 import math
 
 import jax
+import jax.numpy as jnp
 import numpy as np
 
 from .._adapters.net import Net
@@ -19,6 +20,7 @@ from . import structured as st
 from .checks import (
     as_compute,
     check_finite_tree,
+    check_independent,
     check_inputs,
     check_net,
     check_pair,
@@ -148,12 +150,14 @@ def prepare(net, x1, x2=None, *, outputs="trace", method="auto", params: ParamFi
     check_pair(x1, x2)
     dtype = compute_dtype()
     check_finite_tree(net.params, "net.params")
+    check_finite_tree(net.state, "net.state")
     selection = select(net.params, params, by_layer=by_layer)
     p = as_compute(net.params, dtype)
     s = as_compute(net.state, dtype)
     x1 = _cast_input(x1, dtype)
     x2 = None if x2 is None else _cast_input(x2, dtype)
     num_outputs = output_size(net, p, s, x1, "x1")
+    check_independent(net, p, s, x1, x2)
     leaves = jax.tree_util.tree_leaves(p)
     idx = set(selection.indices)
     diff = [leaf for i, leaf in enumerate(leaves) if i in idx]
@@ -162,7 +166,7 @@ def prepare(net, x1, x2=None, *, outputs="trace", method="auto", params: ParamFi
 
 
 def _cast_input(x: np.ndarray, dtype) -> np.ndarray:
-    return x.astype(dtype) if np.issubdtype(x.dtype, np.floating) else x
+    return x.astype(dtype) if jnp.issubdtype(x.dtype, jnp.floating) else x
 
 
 def _spec(x):
@@ -253,6 +257,10 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
     base = Program(req.net.call, jax.tree_util.tree_structure(req.params), sel, outputs, o,
                    "jacobian", ("dense",) * len(req.diff))
     fwd, acts, analysis = _traced(req, base)
+    _check_differentiable(req, analysis, names, method)
+    costed = {"jacobian", "structured", "jvp"} if method == "auto" else {method}
+    if method == "auto" and _custom_vjp(analysis.closed.jaxpr):
+        costed.discard("jvp")  # forward mode is undefined through jax.custom_vjp
     pairs = n1 * (n1 + 1) / 2 if sym else n1 * n2
     tile_elems = math.prod(tile_shape(outputs, 1, 1, o))
     rate = C.machine_rate(req.dtype.name)
@@ -292,7 +300,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
     transient = a * acts * isz  # VJP residuals and cotangents, per example
 
     # Jacobian contraction: every leaf dense from the network-wide VJP.
-    if method in ("auto", "jacobian"):
+    if "jacobian" in costed:
         rows = []
         for name, shape, p in zip(names, shapes, sizes, strict=True):
             rows.append(LeafCost(name, shape, "fallback", "jacobian",
@@ -303,7 +311,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
 
     # Structured derivatives: per leaf factored, dense or streamed from its consumer, else the
     # fallback Jacobian.
-    if method in ("auto", "structured"):
+    if "structured" in costed:
         # Each example's dense derivative is written once and read by every tile it is in:
         # per pair, about 2/(block side) reads plus the write shared by the pairs of its row.
         pricing = _Pricing(rate=rate, flops_per_byte=rate / stream,
@@ -336,7 +344,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
                pair_tmp, extra=chunks)
 
     # NTK-vector products: per pair, one JVP per output direction.
-    if method in ("auto", "jvp"):
+    if "jvp" in costed:
         p_total = sum(sizes)
         chunk = int(max(1, min(64, budget // max(1, 8 * p_total * isz))))
         rows = [LeafCost(n, s, "—", "jvp", 0.0, 0.0) for n, s in zip(names, shapes, strict=True)]
@@ -360,6 +368,41 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
     estimates = {m: v[0] for m, v in candidates.items()}
     return Plan(chosen, outputs, n1, n2, sym, o, req.dtype, block, cache, tuple(rows), flops,
                 peak, seconds, estimates, budget, rate, stream, program, sel.group_names)
+
+
+def _check_differentiable(req: Request, analysis, names: list[str], method: str) -> None:
+    """Refuse a kernel that would be identically zero or that the method cannot compute."""
+    if all(analysis.unused):
+        sel = req.selection
+        shown = f"{', '.join(sel.names[:8])}{', ...' if len(sel.names) > 8 else ''}"
+        if len(sel.indices) < len(sel.names):
+            raise ValueError(
+                f"`params` selects only parameters the model's outputs do not depend on "
+                f"({', '.join(names[:8])}), so the kernel would be zero: select parameters the "
+                f"model uses (all parameters: {shown})."
+            )
+        raise ValueError(
+            f"`net`'s outputs do not depend on its parameters ({shown}), so the kernel would be "
+            "zero: check that `apply` uses `params` rather than values captured in a closure."
+        )
+    if method == "jvp" and _custom_vjp(analysis.closed.jaxpr):
+        raise ValueError(
+            "`method`='jvp' needs forward-mode derivatives, but the model uses a jax.custom_vjp "
+            "function, which has none: use method='jacobian' or 'structured' (or 'auto')."
+        )
+
+
+def _custom_vjp(jaxpr) -> bool:
+    """Whether ``jaxpr`` (or any jaxpr nested in its equations) calls a jax.custom_vjp rule."""
+    for eqn in jaxpr.eqns:
+        if eqn.primitive.name.startswith("custom_vjp"):
+            return True
+        for value in eqn.params.values():
+            for sub in value if isinstance(value, tuple | list) else (value,):
+                inner = getattr(sub, "jaxpr", sub)
+                if hasattr(inner, "eqns") and _custom_vjp(inner):
+                    return True
+    return False
 
 
 def _factored_tmp(use: st.Use, a: int, outputs: str) -> float:

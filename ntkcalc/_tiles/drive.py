@@ -11,27 +11,57 @@ small); GPU and TPU devices are planned in the full budget each.
 Store: with ``store=`` every tile is written to a zarr store (see `store`) as soon as it is done
 and a read-only `StoredKernel` view is returned; the in-memory kernel is never built. A run
 started again with the same arguments checks the store's fingerprint, verifies the tiles it holds
-and computes only the missing or damaged ones. Processes of a multi-host run (after
-``jax.distributed.initialize``) each compute their share of tiles into the same store.
+and computes only the missing or damaged ones; a store whose own metadata is damaged is
+recomputed. Processes of a multi-host run (after ``jax.distributed.initialize``) each compute
+their share of tiles into the same store; independent processes on one local store take turns
+(the store's lock). Before computing, the free disk space is checked against what the missing
+tiles need; a full disk is reported as such, and the same call run again resumes.
+
+Results: every finished tile is checked for NaN/Inf (`run.check_finite_tile`, naming the
+examples), and a kernel that is exactly zero is reported with a RuntimeWarning.
 """
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import math
 import os
 import time
+import warnings
+
+import numpy as np
 
 from .._engine import cost as C
 from .._engine.options import tile_shape
 from .._engine.planner import plan_request
 from .blocking import tiles
 from .fingerprint import ADOPTABLE, differences, fingerprint
-from .messages import NOT_A_STORE, STORE_INCOMPLETE, STORE_MISMATCH, STORE_NEEDED
+from .messages import (
+    NOT_A_STORE,
+    STORE_DAMAGED,
+    STORE_INCOMPLETE,
+    STORE_MISMATCH,
+    STORE_NEEDED,
+    ZERO_KERNEL,
+)
 from .placement import barrier, check_devices, process, share, shares_host_memory
 from .progress import bar, logger
 from .run import assemble, iter_tiles
-from .store import TileStore, check_writable, describe, read_fingerprint
+from .spot_check import check_count
+from .spot_check import spot_check as run_spot_check
+from .store import (
+    TileStore,
+    check_writable,
+    clear,
+    describe,
+    disk_full,
+    free_bytes,
+    inspect,
+    is_disk_full,
+    locked,
+    read_fingerprint,
+)
 from .view import RunInfo, StoredKernel
 
 
@@ -119,10 +149,15 @@ def _adopt(plan, req, stored: dict, *, location, outputs, memory, method):
     return plan
 
 
-def compute(req, *, outputs, memory, method, store, progress, devices, verify: bool = True):
-    """([kernel per group], RunInfo): numpy arrays in memory, or `StoredKernel` views."""
+def compute(req, *, outputs, memory, method, store, progress, devices, verify: bool = True,
+            spot_check: int = 0):
+    """([kernel per group], RunInfo): numpy arrays in memory, or `StoredKernel` views.
+
+    ``spot_check`` entries of the finished kernel are recomputed independently (`spot_check`).
+    """
     store = check_store(store)
     progress = _check_progress(progress)
+    checked = check_count(spot_check)
     devs = check_devices(devices)
     index, count = process()
     if store is None and count > 1:
@@ -140,43 +175,87 @@ def compute(req, *, outputs, memory, method, store, progress, devices, verify: b
     if store is None:
         with bar(len(all_tiles), enabled=progress, where=where) as b:
             out = assemble(plan, req, devices=devs, on_tile=lambda t: b.update())
+        if not np.any(out):
+            warnings.warn(ZERO_KERNEL, RuntimeWarning, stacklevel=3)
         info = RunInfo(None, len(all_tiles), len(all_tiles), 0, 0, plan.block, len(devs))
-        return [out[g] for g in range(len(plan.group_names))], info
+        kernels = [out[g] for g in range(len(plan.group_names))]
+        run_spot_check(req, kernels, count=checked, outputs=outputs)
+        return kernels, info
 
     location = describe(store)
     options = dict(location=location, outputs=outputs, memory=memory, method=method)
-    if index == 0:
+    # One process: the store is locked for the whole run, so an independent process on the same
+    # store waits and then reuses the tiles. Several JAX processes: only creation is locked.
+    with locked(store) if count == 1 else contextlib.nullcontext():
+        if index == 0:
+            with locked(store) if count > 1 else contextlib.nullcontext():
+                plan = _open_store(store, plan, req, options)
+        barrier("ntkcalc-store-ready")
         stored = read_fingerprint(store)
-        if stored is not None:
-            plan = _adopt(plan, req, stored, **options)
-        TileStore.create(store, fingerprint(plan, req), plan)
-    barrier("ntkcalc-store-ready")
-    stored = read_fingerprint(store)
-    if stored is None:
-        raise ValueError(NOT_A_STORE.format(store=location))
-    plan = _adopt(plan, req, stored, **options)
-    ts = TileStore.open(store, plan)
-    all_tiles = tiles(plan.n1, plan.n2, plan.block, symmetric=plan.symmetric)
-    mine = share(all_tiles, index, count)
-    todo, repaired = ts.status(mine, verify=verify)
-    logger.info("ntkcalc: store %s: %d of %d tiles done, %d to compute%s (%d failed verification), "
-                "tiles of %d examples on %d device(s)", location, len(mine) - len(todo),
-                len(mine), len(todo), where, repaired, plan.block, len(devs))
-    t0 = time.perf_counter()
-    with bar(len(todo), enabled=progress, where=where) as b:
-        for t, values in iter_tiles(plan, req, todo, devices=devs):
-            ts.write(t, values)
-            b.update()
-    barrier("ntkcalc-store-done")
-    missing = len(all_tiles) - ts.count_done()
+        if stored is None:
+            raise ValueError(NOT_A_STORE.format(store=location))
+        plan = _adopt(plan, req, stored, **options)
+        ts = TileStore.open(store, plan)
+        all_tiles = tiles(plan.n1, plan.n2, plan.block, symmetric=plan.symmetric)
+        mine = share(all_tiles, index, count)
+        todo, repaired = ts.status(mine, verify=verify)
+        _check_space(store, ts, todo)
+        logger.info("ntkcalc: store %s: %d of %d tiles done, %d to compute%s (%d failed "
+                    "verification), tiles of %d examples on %d device(s)", location,
+                    len(mine) - len(todo), len(mine), len(todo), where, repaired, plan.block,
+                    len(devs))
+        t0 = time.perf_counter()
+        nonzero = False
+        with bar(len(todo), enabled=progress, where=where) as b:
+            left = list(todo)
+            try:
+                for t, values in iter_tiles(plan, req, todo, devices=devs):
+                    ts.write(t, values)
+                    left.remove(t)
+                    nonzero = nonzero or bool(np.any(values))
+                    b.update()
+            except OSError as e:
+                if is_disk_full(e):
+                    raise disk_full(store, needed=sum(map(ts.tile_bytes, left))) from e
+                raise
+        barrier("ntkcalc-store-done")
+        missing = len(all_tiles) - ts.count_done()
     logger.info("ntkcalc: computed %d tiles in %.1f s; store %s has %d of %d tiles",
                 len(todo), time.perf_counter() - t0, location, len(all_tiles) - missing,
                 len(all_tiles))
     if missing:
         raise RuntimeError(STORE_INCOMPLETE.format(store=location, missing=missing,
                                                    total=len(all_tiles)))
+    if todo and len(todo) == len(all_tiles) and not nonzero:
+        warnings.warn(ZERO_KERNEL, RuntimeWarning, stacklevel=3)
     info = RunInfo(location, len(all_tiles), len(todo), len(mine) - len(todo), repaired,
                    plan.block, len(devs), (index, count))
-    return [StoredKernel(ts.kernel, g, info) for g in range(len(plan.group_names))], info
+    kernels = [StoredKernel(ts.kernel, g, info) for g in range(len(plan.group_names))]
+    if index == 0:
+        run_spot_check(req, kernels, count=checked, outputs=outputs)
+    return kernels, info
 
 
+def _open_store(store, plan, req, options: dict):
+    """Create the store or check the one there (held under its lock): the plan to run."""
+    found = inspect(store)
+    if found.damage:
+        logger.warning(STORE_DAMAGED.format(store=options["location"], damage=found.damage))
+        clear(store)
+    elif found.fingerprint is not None:
+        plan = _adopt(plan, req, found.fingerprint, **options)
+    try:
+        TileStore.create(store, fingerprint(plan, req), plan)
+    except OSError as e:
+        if is_disk_full(e):
+            raise disk_full(store, needed=None) from e
+        raise
+    return plan
+
+
+def _check_space(store, ts: TileStore, todo) -> None:
+    """Fail before computing when the missing tiles cannot fit on a local store's disk."""
+    free = free_bytes(store)
+    needed = sum(map(ts.tile_bytes, todo))
+    if free is not None and needed > free:
+        raise disk_full(store, needed=needed)

@@ -56,3 +56,32 @@ def fingerprint(plan, req) -> dict:
 def differences(stored: dict, now: dict) -> list[str]:
     """Names of the fields whose values differ (a field missing on one side differs)."""
     return sorted(k for k in set(stored) | set(now) if stored.get(k) != now.get(k))
+
+
+#: The type of every fingerprint field (a record read back must have exactly these).
+FIELDS = {"params": str, "inputs": str, "symmetric": bool, "method": str, "outputs": str,
+          "dtype": str, "parameters": str, "groups": list, "shape": list, "block": int}
+
+
+def check_record(record) -> dict:
+    """``record`` (a store's ``{"fingerprint": ..., "layout": ...}`` attribute) if it is whole.
+
+    Raises ValueError saying what is wrong: not a mapping, a field missing or of the wrong type,
+    a block size or shape that is not a positive integer.
+    """
+    if not isinstance(record, dict) or not isinstance(record.get("fingerprint"), dict):
+        raise ValueError(f"expected {{'fingerprint': {{...}}, 'layout': ...}}, found {record!r}")
+    fp = record["fingerprint"]
+    missing = sorted(set(FIELDS) - set(fp))
+    if missing:
+        raise ValueError(f"fields {', '.join(missing)} are missing")
+    for name, kind in FIELDS.items():
+        value = fp[name]
+        if not isinstance(value, kind) or (kind is int and isinstance(value, bool)):
+            raise ValueError(f"field {name!r} is {value!r}, not a {kind.__name__}")
+    sizes = [fp["block"], *fp["shape"]]
+    if not all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in sizes) or not (
+            2 <= len(fp["shape"]) <= 4) or not fp["groups"]:
+        raise ValueError(f"block {fp['block']!r}, shape {fp['shape']!r} or groups "
+                         f"{fp['groups']!r} are not a kernel's")
+    return record

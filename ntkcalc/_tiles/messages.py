@@ -26,3 +26,35 @@ NOT_A_STORE = (
     "`store`={store!r} holds zarr data that ntkcalc did not write: choose a new path (or delete "
     "it if it is a leftover)."
 )
+
+NON_FINITE_TILE = (
+    "the kernel holds {count} non-finite value(s) ({kinds}) in the tile of x1 examples "
+    "{r0}..{r1} × {other} examples {c0}..{c1}; first at K[{i}, {j}]. Rows (x1 examples) "
+    "involved: {rows}; columns ({other} examples): {cols}. The model's outputs or their "
+    "derivatives are not finite for these examples (e.g. sqrt or log of a negative number, "
+    "division by zero, overflow or underflow in float32): evaluate `net(x1[[{i}]])` and its "
+    "gradient to find the cause; in float32, enabling float64 (jax_enable_x64) may help."
+)
+
+ZERO_KERNEL = (
+    "the kernel is exactly zero: the outputs do not depend on the differentiated parameters at "
+    "these inputs, or their derivatives underflow (common in float32 with saturated "
+    "activations; try float64 via jax_enable_x64)."
+)
+
+DISK_FULL = (
+    "`store`={store!r}: the disk is full (free now: {free}); {need}. Free space (or choose a "
+    "`store` on a larger disk) and run the same call again: it resumes from the tiles already "
+    "written."
+)
+
+STORE_BUSY = (
+    "ntkcalc: `store`={store!r} is in use by another process; waiting for it to "
+    "finish, then this run resumes from its tiles (or is refused if it computes another kernel). "
+    "Processes that share one kernel's work run under jax.distributed."
+)
+
+STORE_DAMAGED = (
+    "ntkcalc: `store`={store!r} is damaged: {damage}. Its tiles cannot be matched to a kernel "
+    "any more, so the kernel is recomputed from scratch into it."
+)

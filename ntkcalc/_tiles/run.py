@@ -18,6 +18,7 @@ import numpy as np
 
 from .._engine.program import compiled, compiled_single
 from .blocking import Tile, mirror, padded, tiles
+from .messages import NON_FINITE_TILE
 
 
 class _Placed:
@@ -61,7 +62,8 @@ def iter_tiles(plan, req, todo: list[Tile] | None = None, *,
             same = plan.symmetric
             xa = put(padded(x1, t.r0, t.r1, b), d)
             xb = xa if same else put(padded(x2, t.c0, t.c1, b), d)
-            yield _fetch(t, compiled_single(plan.program)(*args[d], xa, xb, same=same))
+            yield _fetch(t, compiled_single(plan.program)(*args[d], xa, xb, same=same),
+                         plan.symmetric)
             return
         factors_fn, tile_fn = compiled(plan.program)
         row_i, row_f = None, None
@@ -86,13 +88,37 @@ def iter_tiles(plan, req, todo: list[Tile] | None = None, *,
             same = col_f is row_f
             pending.append((t, tile_fn(*args[d], row_f.on(d), col_f.on(d), same=same)))
             if len(pending) >= len(devs):
-                yield _fetch(*pending.popleft())
+                yield _fetch(*pending.popleft(), plan.symmetric)
         while pending:
-            yield _fetch(*pending.popleft())
+            yield _fetch(*pending.popleft(), plan.symmetric)
 
 
-def _fetch(t: Tile, values) -> tuple[Tile, np.ndarray]:
-    return t, np.asarray(values)[:, : t.r1 - t.r0, : t.c1 - t.c0]
+def _fetch(t: Tile, values, symmetric: bool) -> tuple[Tile, np.ndarray]:
+    values = np.asarray(values)[:, : t.r1 - t.r0, : t.c1 - t.c0]
+    check_finite_tile(t, values, symmetric=symmetric)
+    return t, values
+
+
+def check_finite_tile(t: Tile, values: np.ndarray, *, symmetric: bool) -> None:
+    """Raise FloatingPointError naming the examples if a finished tile holds NaN or Inf."""
+    bad = ~np.isfinite(values)
+    if not bad.any():
+        return
+    per_pair = bad.any(axis=(0, *range(3, values.ndim)))  # (rows, cols) of the tile
+    entries = np.argwhere(per_pair)
+    rows = sorted({t.r0 + int(r) for r, _ in entries})
+    cols = sorted({t.c0 + int(c) for _, c in entries})
+    kinds = ", ".join(k for k, m in (("nan", np.isnan(values)), ("inf", np.isinf(values)))
+                      if m.any())
+
+    def listed(idx):
+        return ", ".join(map(str, idx[:10])) + (f", ... ({len(idx)} in all)" if len(idx) > 10
+                                                 else "")
+
+    raise FloatingPointError(NON_FINITE_TILE.format(
+        count=int(bad.sum()), kinds=kinds, r0=t.r0, r1=t.r1 - 1, c0=t.c0, c1=t.c1 - 1,
+        other="x1" if symmetric else "x2", i=t.r0 + int(entries[0][0]),
+        j=t.c0 + int(entries[0][1]), rows=listed(rows), cols=listed(cols)))
 
 
 def assemble(plan, req, *, on_tile: Callable[[Tile], None] | None = None,

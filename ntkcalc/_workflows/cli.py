@@ -1,7 +1,9 @@
 """The ``ntkcalc`` command line: ``demo``, ``kernel``, ``report``, ``bench``.
 
 Argument errors print one line on stderr and exit with status 2; errors while running (a
-checkpoint that does not match the model, ...) print the library's message and exit with 1.
+checkpoint that does not match the model, a memory budget too small, a store that cannot be
+written or a full disk, a non-finite kernel, ...) print the library's message as one line and exit
+with 1, never a traceback.
 """
 
 from __future__ import annotations
@@ -166,8 +168,17 @@ def _kernel(args) -> int:
     model = factory()
     linen = {} if isinstance(model, nnx.Module) else {"example": x[:1]}
     _say(args.quiet, f"loading {args.checkpoint} into {type(model).__name__}")
-    net = load_checkpoint(args.checkpoint, module=model, step=args.step, item=args.item,
-                          subtree=args.subtree, **linen)
+    try:
+        net = load_checkpoint(args.checkpoint, module=model, step=args.step, item=args.item,
+                              subtree=args.subtree, **linen)
+    except (ValueError, TypeError) as err:
+        if not linen:
+            raise
+        # A linen module's variables take their shapes from the first example of --x, so a
+        # checkpoint that "does not match" may be inputs of the wrong width.
+        raise type(err)(f"{err} (The variables of {type(model).__name__} were shaped from the "
+                        f"first example of --x, of feature shape {x.shape[1:]}: if the checkpoint "
+                        "is the right one, --x has the wrong feature shape for it.)") from err
     accepted = inspect.signature(ntk).parameters
     extra = {k: v for k, v in (("store", args.store), ("progress", not args.quiet))
              if k in accepted}
@@ -235,6 +246,13 @@ def main(argv: list[str] | None = None) -> int:
     except UsageError as err:
         print(err, file=sys.stderr)
         return 2
-    except (ValueError, TypeError, FileNotFoundError) as err:
-        print(f"ntkcalc: error: {err}", file=sys.stderr)
+    except (ValueError, TypeError, MemoryError, ArithmeticError, OSError) as err:
+        # The library's messages say what to do; OSError covers a full disk, a path that is a
+        # file or not writable (PermissionError, FileExistsError, FileNotFoundError).
+        text = str(err)
+        if isinstance(err, OSError) and err.strerror:
+            text = err.strerror if err.filename is None else (
+                f"{err.strerror}: {err.filename!r}: pass a path that is a writable directory or "
+                "does not exist yet.")
+        print(f"ntkcalc: error: {' '.join(text.split())}", file=sys.stderr)
         return 1
