@@ -148,4 +148,5 @@ def _tagged(kernel, outputs: str, num_outputs: int):
 
 
 _indented = "\n".join(" " * 12 + line for line in OUTPUTS_DOC.splitlines())
-ntk.__doc__ = ntk.__doc__.format(outputs_doc=_indented, scale_doc=_SCALE_DOC)
+if ntk.__doc__:  # None under python -OO
+    ntk.__doc__ = ntk.__doc__.format(outputs_doc=_indented, scale_doc=_SCALE_DOC)

@@ -33,3 +33,13 @@ def test_api_reference_is_up_to_date():
 def test_docs_pages_exist():
     for page in ("quickstart", "concepts", "math", "scale", "cautions", "performance", "api"):
         assert (ROOT / "docs" / f"{page}.md").stat().st_size > 500, page
+
+
+def test_package_imports_without_docstrings():
+    # `python -OO` strips docstrings; nothing may format or read them at import time.
+    import subprocess
+    import sys
+
+    done = subprocess.run([sys.executable, "-OO", "-c", "import ntkcalc, ntkcalc.bench"],
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
