@@ -120,6 +120,25 @@ class DropoutOnly(nn.Module):
         return nn.Dense(2)(nn.Dropout(0.5, deterministic=not self.train)(x))
 
 
+class Sows(nn.Module):
+    @nn.compact
+    def __call__(self, x):
+        h = nn.tanh(nn.Dense(4)(x))
+        self.sow("intermediates", "hidden", h)
+        return nn.Dense(2)(h)
+
+
+def test_linen_mutable_collections_are_dropped():
+    # mutable= makes module.apply return (outputs, updated collections); the Net keeps outputs.
+    x = np.random.default_rng(3).normal(size=(3, 5))
+    variables = f64(Sows().init(jax.random.key(0), x))
+    net = ntkcalc.Net.from_linen(Sows(), variables, mutable=["intermediates"])
+    plain = ntkcalc.Net.from_linen(Sows(), variables)
+    np.testing.assert_array_equal(net(x), plain(x))
+    want = reduce_mode(reference_full(plain, x), "trace")  # jax.jacrev reference
+    assert_close(ntkcalc.ntk(net, x, progress=False), want)
+
+
 def test_linen_without_variables():
     with pytest.raises(TypeError, match=r"`variables` must be the dict of collections from "
                                         r"`module.init\(key, x\)`.*got NoneType"):

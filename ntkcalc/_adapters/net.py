@@ -52,8 +52,11 @@ def _call_linen(module, trainable, apply_kwargs, params, state, x):
     from flax import errors
 
     variables = {**state, trainable: params}
+    kwargs = dict(apply_kwargs)
     try:
-        return module.apply(variables, x, **dict(apply_kwargs))
+        out = module.apply(variables, x, **kwargs)
+        # With `mutable`, apply returns (outputs, updated collections): the update is dropped.
+        return out[0] if kwargs.get("mutable", False) else out
     except errors.ModifyScopeVariableError as err:
         raise NetCallError(
             f"{type(module).__name__} updates a variable collection when called this way "
@@ -173,7 +176,8 @@ class Net:
 
         The ``trainable`` collection is differentiated; every other collection (``batch_stats``,
         ...) is frozen state. ``apply_kwargs`` (e.g. ``train=False``) are passed to
-        ``module.apply`` on every call.
+        ``module.apply`` on every call; with ``mutable=`` (e.g. ``["intermediates"]`` for values
+        the module sows) the updated collections ``module.apply`` returns are discarded.
         """
         if model_kind(module) != "linen":
             raise TypeError(
