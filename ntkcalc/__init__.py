@@ -2,8 +2,7 @@
 
 The flow is one-way; each public name below says where it lives:
 
-- model → `Net` (``_adapters``): wrap a JAX function, a flax linen or nnx model, an equinox
-  module, a haiku transform, a checkpoint; pick the outputs to study;
+- model → `Net` (``_adapters``): wrap a JAX function, a flax linen or nnx model, a checkpoint;
 - `plan` (``_engine``): which method per parameter leaf, tile sizes, estimated cost;
 - tiles (``_tiles``): blocking, the resumable store, devices and hosts;
 - `ntk`, `ntk_by_layer` (``_kernel``): the kernel as numpy arrays (or a store on disk);
@@ -74,3 +73,4 @@ from ._workflows.drift import DEFAULT_THRESHOLD as DEFAULT_THRESHOLD
 from ._workflows.drift import Drift as Drift
 from ._workflows.drift import drift as drift
 from ._workflows.report import write_report as write_report
+

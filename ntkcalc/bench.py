@@ -7,7 +7,8 @@ einsum — and each ntkcalc method on the same model and inputs, in float32 at m
 time), the same rule for every method and the recipe; ``first`` includes tracing and compilation.
 
 Rows: the MLP 784-512-512-512-10 (0.93M parameters), a CNN with 3 conv layers (0.33M), a
-transformer encoder block on 16 tokens, and the dataset-scale rows of `ntkcalc._tiles.bench_scale`.
+transformer encoder block on 16 tokens, the dataset-scale rows of `ntkcalc._tiles.bench_scale`
+(``--scale``) and the sketched-features rows of `ntkcalc._sketch.bench_sketch` (``--sketch``).
 """
 
 from __future__ import annotations
@@ -218,13 +219,16 @@ def main(argv: list[str] | None = None) -> int:
         print(json.dumps(_child(json.loads(argv[1]))))
         return 0
     parser = argparse.ArgumentParser(
-        prog="ntkcalc bench", description=__doc__.split("\n\n")[0],
+        prog="ntkcalc bench", description=(__doc__ or "").split("\n\n")[0],
         epilog="example:\n  ntkcalc bench --quick\n  ntkcalc bench --model cnn\n"
                "  ntkcalc bench --scale --json out.json",
         formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--quick", action="store_true", help="two small rows only")
     parser.add_argument("--scale", action="store_true",
                         help="also run the dataset-scale rows (memory budget, store, devices)")
+    parser.add_argument("--sketch", action="store_true",
+                        help="also run the sketched-features rows (accuracy against the exact "
+                             "kernel at N=4000, throughput at N=100,000 from a memmap)")
     parser.add_argument("--model", action="append", choices=sorted(MODELS),
                         help="only the rows of this model (repeatable)")
     parser.add_argument("--json", help="write every row to this JSON file")
@@ -245,6 +249,10 @@ def main(argv: list[str] | None = None) -> int:
         for r in bench_scale.memory_budget() + bench_scale.device_throughput():
             print(r)
             table.append(r)
+    if args.sketch:
+        from ._sketch import bench_sketch
+
+        table += bench_sketch.rows()
     print()
     for line in summarize(table):
         print(line)

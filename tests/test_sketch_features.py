@@ -168,7 +168,7 @@ def test_every_representation_is_unbiased(case):
     factored, dense and fallback leaves): the mean of k features' estimates matches Θ."""
     net = case.make()
     x = case.x(np.random.default_rng(1), 2)
-    f = ntkcalc.ntk_features(net, x, k=5000, seed=5, progress=False)
+    f = ntkcalc.ntk_features(net, x, k=3000, seed=5, progress=False)
     check_unbiased(f, rows_kernel(net, x, "trace"))
 
 

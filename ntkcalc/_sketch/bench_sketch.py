@@ -1,0 +1,143 @@
+"""Benchmark rows of sketched features: accuracy against the exact kernel, and throughput.
+
+Run by ``python -m ntkcalc.bench --sketch``; each measurement in a fresh subprocess
+(``python -m ntkcalc._sketch.bench_sketch <json>``), float32 with matmul precision "highest".
+
+Model: the dataset-scale MLP 784-512-512-512-10 (tanh) of `ntkcalc._tiles.bench_scale`, Gaussian
+inputs. Task (regenerable): labels are the argmax of a seeded teacher network of the same
+architecture (seed 7) on the same inputs; targets are their one-hot rows.
+
+- accuracy: at N examples (3/4 train, 1/4 test), the exact trace kernel by `ntkcalc.ntk` against
+  features at each k: top-10 eigenvalues (relative error), kernel-ridge test MSE (absolute
+  difference), centered alignment (difference in units of its jackknife error bar);
+- scale: N examples streamed from a .npy memmap into a features store, seconds per 100,000
+  examples and peak RSS of the process, the 1,000,000-example time extrapolated linearly.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import tempfile
+import time
+
+from .._subprocess import run_child
+
+TOP = 10
+
+
+def _task(n: int):
+    import numpy as np
+
+    from .._tiles import bench_scale as bs
+
+    net = bs._net(0)
+    x = bs._inputs(n, seed=1)
+    teacher = bs._net(7)
+    labels = np.asarray(teacher.apply(teacher.params, x)).argmax(1)
+    return net, x, np.eye(10)[labels]
+
+
+def _accuracy(spec: dict) -> list[dict]:
+    import numpy as np
+    import scipy.linalg
+
+    import ntkcalc
+
+    n = spec["n"]
+    net, x, y = _task(n)
+    tr, te = slice(0, 3 * n // 4), slice(3 * n // 4, n)
+    t0 = time.perf_counter()
+    k = np.asarray(ntkcalc.ntk(net, x, outputs="trace", progress=False), np.float64)
+    exact_s = time.perf_counter() - t0
+    ktr = k[tr, tr]
+    m = ktr.shape[0]
+    eig = scipy.linalg.eigh(k, eigvals_only=True, subset_by_index=(n - TOP, n - 1))[::-1]
+    ridge = spec.get("ridge_scale", 1e-2) * float(np.trace(ktr)) / m
+    fit = ntkcalc.ridge_fit(ktr, y[tr], ridge=ridge, k_test_train=k[te, tr])
+    test_mse = float(np.mean((fit.test_predictions - y[te]) ** 2))
+    align = ntkcalc.alignment(ktr, y[tr])
+    rows = []
+    for kk in spec["ks"]:
+        t0 = time.perf_counter()
+        f = ntkcalc.ntk_features(net, x, k=kk, seed=0, progress=False, memory="6GB")
+        feat_s = time.perf_counter() - t0
+        phi = np.asarray(f.features)
+        t0 = time.perf_counter()
+        spec_f, _ = ntkcalc.features_spectrum(phi, top=TOP)
+        rf = ntkcalc.features_ridge(phi[tr], y[tr], ridge=ridge, test_features=phi[te],
+                                    y_test=y[te])
+        af = ntkcalc.features_alignment(phi[tr], y[tr])
+        analysis_s = time.perf_counter() - t0
+        rel = np.abs(spec_f.value - eig) / eig
+        rows.append({
+            "kind": "accuracy", "N": n, "k": kk, "exact_s": exact_s, "features_s": feat_s,
+            "analysis_s": analysis_s,
+            "eig_rel_err_max": float(rel.max()), "eig_rel_err_top1": float(rel[0]),
+            "eig_rel_err_bar_max": float(np.max(spec_f.error / eig)),
+            "eig_rel_bias_max": float(np.max(np.abs(spec_f.bias) / eig)),
+            "test_mse_exact": test_mse, "test_mse_features": rf.test_mse.value,
+            "test_mse_error_bar": rf.test_mse.error,
+            "alignment_exact": align, "alignment_features": af.value,
+            "alignment_error_bar": af.error,
+            "alignment_z": abs(af.value - align) / af.error,
+        })
+    return rows
+
+
+def _scale(spec: dict) -> list[dict]:
+    import resource
+
+    import numpy as np
+
+    import ntkcalc
+
+    from .._tiles import bench_scale as bs
+
+    n, k = spec["n"], spec["k"]
+    net = bs._net(0)
+    with tempfile.TemporaryDirectory(dir=spec.get("dir")) as tmp:
+        path = os.path.join(tmp, "x.npy")
+        mm = np.lib.format.open_memmap(path, mode="w+", dtype=np.float32, shape=(n, 784))
+        step = 50_000
+        for r0 in range(0, n, step):
+            mm[r0:r0 + step] = bs._inputs(min(step, n - r0), seed=1 + r0)
+        mm.flush()
+        del mm
+        x = np.load(path, mmap_mode="r")
+        load0 = os.getloadavg()[0]
+        t0 = time.perf_counter()
+        f = ntkcalc.ntk_features(net, x, k=k, store=os.path.join(tmp, "f.zarr"),
+                                 memory=spec.get("memory", "4GB"), progress=False)
+        wall = time.perf_counter() - t0
+        rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6
+    per = f.seconds / n * 1e5
+    return [{"kind": "scale", "N": n, "k": k, "block": f.block, "seconds": wall,
+             "blocks_s": f.seconds, "s_per_100k": per, "extrapolated_1M_s": 10 * per,
+             "peak_rss_gb": rss, "memory": spec.get("memory", "4GB"),
+             "load_avg_start": load0, "load_avg_end": os.getloadavg()[0]}]
+
+
+def _child(spec: dict) -> list[dict]:
+    import jax
+
+    jax.config.update("jax_default_matmul_precision", "highest")
+    return _accuracy(spec) if spec["kind"] == "accuracy" else _scale(spec)
+
+
+def rows(*, n_accuracy: int = 4000, ks=(1024, 2048, 4096), n_scale: int = 100_000,
+         k_scale: int = 2048, log=print) -> list[dict]:
+    """The benchmark rows, each group in a fresh process."""
+    out = []
+    for spec in ({"kind": "accuracy", "n": n_accuracy, "ks": list(ks)},
+                 {"kind": "scale", "n": n_scale, "k": k_scale}):
+        res = run_child("ntkcalc._sketch.bench_sketch", [json.dumps(spec)], timeout=7200)
+        for r in res["rows"]:
+            log(r)
+            out.append(r)
+    return out
+
+
+if __name__ == "__main__":
+    print(json.dumps({"rows": _child(json.loads(sys.argv[1]))}))
