@@ -2,13 +2,15 @@
 
 The flow is one-way; each public name below says where it lives:
 
-- model → `Net` (``_adapters``): wrap a JAX function, a flax linen or nnx model, a checkpoint;
+- model → `Net` (``_adapters``): wrap a JAX function, a flax linen or nnx model, an equinox
+  module, a haiku transform, a checkpoint; pick the outputs to study;
 - `plan` (``_engine``): which method per parameter leaf, tile sizes, estimated cost;
 - tiles (``_tiles``): blocking, the resumable store, devices and hosts;
 - `ntk`, `ntk_by_layer` (``_kernel``): the kernel as numpy arrays (or a store on disk);
 - analysis (``_analysis``): forecasts, kernel ridge and risk, spectrum, expressivity, alignment,
   matrix-free operators;
-- workflows (``_workflows``): drift over a training run, the demo, the report, the command line.
+- workflows (``_workflows``): drift over a training run, your own run end to end
+  (`analyse_run`), the demo, the report, the command line.
 """
 
 __version__ = "0.1.0"
@@ -73,4 +75,8 @@ from ._workflows.drift import DEFAULT_THRESHOLD as DEFAULT_THRESHOLD
 from ._workflows.drift import Drift as Drift
 from ._workflows.drift import drift as drift
 from ._workflows.report import write_report as write_report
+from ._workflows.study import CheckpointAnswers as CheckpointAnswers
+from ._workflows.study import GroupChange as GroupChange
+from ._workflows.study import RunAnalysis as RunAnalysis
+from ._workflows.study import analyse_run as analyse_run
 

@@ -83,7 +83,8 @@ def _run(tmp: str):
         for s in SAVED:
             manager.save(s, args=ocp.args.StandardSave({"params": kept[s]}))
         manager.wait_until_finished()
-    result = analyse_run(f"{tmp}/ckpt", x, labels, module=model, example=x[:1], x_test=xt,
+    # the module as a factory (the class), its variables shaped by x[:1]
+    result = analyse_run(f"{tmp}/ckpt", x, labels, module=_Mlp, x_test=xt,
                          y_test=labels_t, lr=LR, forecast_from=[0, 20], full_batch_gd=True)
     html_path, json_path = result.write(f"{tmp}/report")
     with open(json_path, encoding="utf-8") as fh:

@@ -300,7 +300,10 @@ def analyse_run(
         x_train: (N, ...) training inputs (or the subset to analyse).
         y_train: (N,) integer class labels (read as one-hot rows, the label convention), (N, O)
             one-hot rows or (N,)/(N, O) real targets.
-        module, example, variables, item, subtree: for a checkpoint directory (`load_checkpoint`).
+        module: for a checkpoint directory: the flax linen module or nnx model the checkpoints
+            were saved from, or a function of no arguments that returns it (a factory).
+        example, variables, item, subtree: for a checkpoint directory, as in `load_checkpoint`;
+            a linen module without ``example`` or ``variables`` is shaped by ``x_train[:1]``.
         steps: for a directory, the saved steps to use (default all).
         x_test, y_test: optional test inputs and targets (same formats), for the forecast's test
             curve and the test error of kernel ridge.
@@ -346,7 +349,7 @@ def analyse_run(
         raise ValueError("`x_test` and `y_test` go together: pass both or neither.")
     step_arr, nets = _checkpoints(source, steps, dict(module=module, example=example,
                                                       variables=variables, item=item,
-                                                      subtree=subtree))
+                                                      subtree=subtree), x)
     chosen = _forecast_steps(forecast_from, step_arr)
     xt = None if x_test is None else _checks.examples("x_test", x_test)
 
@@ -413,9 +416,26 @@ def analyse_run(
 
 
 # -- pieces ---------------------------------------------------------------------------------------
-def _checkpoints(source, steps, load: dict) -> tuple[np.ndarray, list[Net]]:
-    """(steps, Nets) from a checkpoint directory or ``(step, Net)`` pairs."""
+def _checkpoints(source, steps, load: dict, x) -> tuple[np.ndarray, list[Net]]:
+    """(steps, Nets) from a checkpoint directory or ``(step, Net)`` pairs.
+
+    For a directory, ``module`` may be a factory (a function of no arguments returning the
+    module); a linen module without ``example`` or ``variables`` takes its variables' shapes
+    from the first training example.
+    """
     if isinstance(source, str | os.PathLike):
+        from flax import linen, nnx
+
+        module = load["module"]
+        if module is not None and not isinstance(module, linen.Module | nnx.Module):
+            if not callable(module):
+                raise TypeError(
+                    "`module` must be a flax linen module, an nnx model or a function of no "
+                    f"arguments returning one, got {type(module).__name__}.")
+            load = {**load, "module": module()}
+        if isinstance(load["module"], linen.Module) and load["example"] is None and (
+                load["variables"] is None):
+            load = {**load, "example": x[:1]}
         chosen, nets = _from_directory(source, steps, load)
         return np.asarray(chosen, dtype=np.int64), list(nets)
     if any(v is not None for v in load.values()) or steps is not None:
