@@ -230,3 +230,25 @@ def test_rejects_bad_arguments(tmp_path):
         analyse_run(pairs, x, np.zeros(4, int), full_batch_gd=True)
     with pytest.raises(ValueError, match="module"):
         analyse_run(pairs, x, np.zeros(4, int), module=object())
+
+
+def test_per_output_forecast_above_the_row_limit_from_net_pairs(run):
+    # Above `full_kernel_rows` the forecast takes K = trace / O as the kernel of every output
+    # (Θ = K ⊗ I_O) and says so. Reference: the closed form of gradient descent on the
+    # linearized model, f_t = y + V (1 − lr Λ/N)^t Vᵀ (f_0 − y) per output (Lee et al., NeurIPS
+    # 2019, arXiv:1902.06720), with numpy's eigh.
+    _, _, _, hand, _, data = run
+    result = analyse_run([(s, hand[s]) for s in SAVED], data["x"], data["y"], lr=LR,
+                         forecast_from=[40], horizon=15, full_kernel_rows=10)
+    (last,) = result.checkpoints
+    assert last.step == 40 and last.kernel.startswith("per-output")
+    assert any("per-output kernel trace / 10" in c for c in result.cautions)
+    assert last.test_mse_ridge is None and last.forecast.test_outputs is None
+    k = np.asarray(ntkcalc.ntk(hand[40], data["x"], progress=False)) / 10
+    lam, v = np.linalg.eigh(k)
+    r0 = np.asarray(hand[40](data["x"])) - data["y"]
+    want = data["y"] + v @ (((1 - LR * lam / N_TRAIN) ** 15)[:, None] * (v.T @ r0))
+    assert int(last.forecast.steps[-1]) == 15
+    assert_close(last.forecast.train_outputs[-1], want, rtol=1e-9)
+    assert last.gap is None  # full_batch_gd not claimed: no comparison with the run
+    assert result.laziness.forecast_gap is None

@@ -387,7 +387,9 @@ def analyse_run(
         i = int(np.flatnonzero(step_arr == s)[0])
         with cautions.watch():
             answers.append(_answers(
-                nets[i], int(s), x, y, xt, yt, labels_t, kernel=dr.kernels[i], lr=lr, loss=loss,
+                nets[i], int(s), x, y, xt, yt, labels_t, kernel=dr.kernels[i], f=outputs[i],
+                ft=None if xt is None else np.asarray(run(nets[i].params, nets[i].state, xt)),
+                lr=lr, loss=loss,
                 horizon=span, ridges=ridges, full_rows=full_kernel_rows, options=options,
                 later=[(int(t), outputs[j]) for j, t in enumerate(step_arr) if t >= s]
                 if full_batch_gd else None, cautions=cautions))
@@ -533,16 +535,17 @@ def _forecast_grid(horizon: int, later: list[int]) -> np.ndarray:
     return np.unique(np.concatenate([[0], grid, np.asarray(later, np.int64)]))
 
 
-def _answers(net, step, x, y, xt, yt, labels_t, *, kernel, lr, loss, horizon, ridges, full_rows,
-             options, later, cautions) -> CheckpointAnswers:
+def _answers(net, step, x, y, xt, yt, labels_t, *, kernel, f, ft, lr, loss, horizon, ridges,
+             full_rows, options, later, cautions) -> CheckpointAnswers:
+    """Forecast (from ``f``, ``ft``: the outputs at this checkpoint), spectrum, alignment, risk
+    and kernel-ridge test error at one checkpoint; ``kernel`` is its (N, N) trace kernel."""
     n, o = y.shape
     k = np.asarray(kernel)
     kx = None  # the test-train trace kernel
     fc = train_mse = test_mse = gap = gap_steps = None
     kernel_used = "trace"
     if lr is not None:
-        f = np.asarray(net(x)).reshape(n, o)
-        ft = None if xt is None else np.asarray(net(xt)).reshape(len(xt), o)
+        ft = None if ft is None else ft.reshape(len(xt), o)
         if n * o <= full_rows:
             k_fc = ntk(net, x, outputs="full", **options)
             kx_fc = None if xt is None else ntk(net, xt, x, outputs="full", **options)
