@@ -79,4 +79,3 @@ from ._workflows.study import CheckpointAnswers as CheckpointAnswers
 from ._workflows.study import GroupChange as GroupChange
 from ._workflows.study import RunAnalysis as RunAnalysis
 from ._workflows.study import analyse_run as analyse_run
-
