@@ -74,12 +74,14 @@ def test_linen_named_layers_match_hand_computation():
     res = feature_rank(net, x, layer="Dense_0", batch=7, ntk_gram="none")
     ref = feature_rank_of(h0)
     assert res.layer == "Dense_0" and res.rank == ref.rank == 4  # affine in 3 inputs, + bias
+    assert "a Dense layer: its affine pre-activation output" in res.features
     assert res.sigma_min == pytest.approx(ref.sigma_min, rel=1e-10)
     blk = p["_Block_0"]["Dense_0"]
     h1 = np.tanh(np.tanh(h0) @ np.asarray(blk["kernel"]) + np.asarray(blk["bias"])[None, :])
     nested = feature_rank(net, x, layer="_Block_0", batch=7, ntk_gram="none")
     assert nested.sigma_max == pytest.approx(feature_rank_of(h1).sigma_max, rel=1e-10)
     assert nested.rank == 7 and not nested.full_rank
+    assert nested.features == "the output of submodule '_Block_0' (_Block) as it returns it"
     with pytest.raises(ValueError, match="Available layers: Dense_0, .*_Block_0/Dense_0"):
         feature_rank(net, x, layer="Dense_9")
 
@@ -104,6 +106,7 @@ def test_nnx_named_layer_and_model_untouched():
         model.first.bias.get_value())[None, :]
     assert res.sigma_max == pytest.approx(feature_rank_of(h).sigma_max, rel=1e-10)
     assert res.rank == 4  # 3 input dimensions + bias bound the rank of an affine layer's output
+    assert "a Linear layer" in res.features
     after = jax.tree_util.tree_map(np.asarray, nnx.state(model))
     jax.tree_util.tree_map(np.testing.assert_array_equal, before, after)
     assert not hasattr(model.first, "__captures__")

@@ -40,6 +40,10 @@ LAYER_NOT_FOUND = (
     "input of the final linear layer), or pass a function features(params, x) -> H."
 )
 
+#: Layer classes (flax linen and nnx) whose output is affine in their input: a pre-activation.
+AFFINE_LAYERS = frozenset({"Dense", "DenseGeneral", "Linear", "LinearGeneral", "Einsum", "Conv",
+                           "ConvTranspose", "Embed"})
+
 NtkGram = Literal["auto", "full", "none"]
 #: ``ntk_gram="auto"`` computes the (N·O, N·O) NTK Gram up to this many rows (≈ 34 MB float64).
 AUTO_GRAM_ROWS = 2048
@@ -186,19 +190,46 @@ def _nnx_features(graphdef, path, params, state, x):
     return _nnx_intermediates(graphdef, params, state, x)[(*path, "__call__")]
 
 
-def _named_layer(net, layer: str, x1, params, state) -> Callable:
-    """``features(params, state, x)`` for the submodule named ``layer``."""
+def _linen_classes(module, variables, x1, apply_kwargs) -> dict[str, str]:
+    """``{submodule path: class name}`` of the submodules a linen call runs."""
+    from flax import linen as nn
+
+    found = {}
+
+    def record(f, args, kwargs, context):
+        if context.method_name == "__call__" and context.module.path:
+            found["/".join(map(str, context.module.path))] = type(context.module).__name__
+        return f(*args, **kwargs)
+
+    with nn.intercept_methods(record):
+        module.apply(variables, x1, **dict(apply_kwargs))
+    return found
+
+
+def _nnx_classes(graphdef, params, state) -> dict[str, str]:
+    """``{attribute path: class name}`` of an nnx model's submodules (on a fresh copy)."""
+    from flax import nnx
+
+    model = nnx.merge(graphdef, params, state)
+    return {"/".join(map(str, path)): type(node).__name__
+            for path, node in nnx.iter_graph(model) if path and isinstance(node, nnx.Module)}
+
+
+def _named_layer(net, layer: str, x1, params, state) -> tuple[Callable, str]:
+    """``features(params, state, x)`` for the submodule named ``layer``, and its class name."""
     call = net.call
     func = getattr(call, "func", None)
     if func is _net._call_linen:
         module, trainable, apply_kwargs = call.args
-        _, inter = module.apply({**state, trainable: params}, x1,
-                                capture_intermediates=True, mutable=["intermediates"],
-                                **dict(apply_kwargs))
+        variables = {**state, trainable: params}
+        _, inter = module.apply(variables, x1, capture_intermediates=True,
+                                mutable=["intermediates"], **dict(apply_kwargs))
         names = _tree_names(inter["intermediates"])
         make = functools.partial(_linen_features, module, trainable, apply_kwargs)
+        classes = functools.partial(_linen_classes, module, variables, x1, apply_kwargs)
     elif func is _net._call_nnx:
         (graphdef,) = call.args
+        classes = functools.partial(_nnx_classes, graphdef, params, state)
         flat = _nnx_intermediates(graphdef, params, state, x1)
         nested = {}
         for key in flat:
@@ -215,7 +246,7 @@ def _named_layer(net, layer: str, x1, params, state) -> Callable:
         )
     if layer not in names:
         raise ValueError(LAYER_NOT_FOUND.format(layer=layer, names=", ".join(names) or "none"))
-    return functools.partial(make, names[layer])
+    return functools.partial(make, names[layer]), classes().get(layer, "module")
 
 
 def feature_rank(
@@ -247,7 +278,8 @@ def feature_rank(
               submodule returns its pre-activation ``x W + b``, not the features after the
               nonlinearity. Linen names submodules in the order they are *constructed*: in
               ``nn.Dense(4)(nn.tanh(nn.Dense(256)(x)))`` the readout ``Dense(4)`` is
-              ``"Dense_0"`` and the hidden layer ``"Dense_1"``.
+              ``"Dense_0"`` and the hidden layer ``"Dense_1"``. The result's ``features``
+              names the submodule's class and says when its output is affine (pre-activation).
             - a function ``features(params, x) -> H`` (batch on axis 0).
         bias: append a ones column (the readout's bias).
         tol: rank tolerance (default ``σ_max·max(n, columns)·ε``, ε of the features' dtype).
@@ -314,8 +346,11 @@ def _features_of(net, layer, params, state, x1):
     if layer == "readout":
         return (readout_features(net.replace(params=params, state=state), x1[0]), "readout",
                 "the input of the final linear readout (post-activation features)")
-    return (_named_layer(net, layer, x1, params, state), layer,
-            f"the output of submodule {layer!r} as it returns it (pre-activation for a Dense)")
+    features, cls = _named_layer(net, layer, x1, params, state)
+    if cls in AFFINE_LAYERS:
+        return features, layer, (f"the output of submodule {layer!r}, a {cls} layer: its affine "
+                                 "pre-activation output, before any nonlinearity")
+    return features, layer, f"the output of submodule {layer!r} ({cls}) as it returns it"
 
 
 def _ntk_spectrum(net, x, mode: str, dtype) -> Spectrum | None:
