@@ -26,12 +26,13 @@ curves shows.
 **The init-spread yardstick.** The same two kernel quantities between the kernels of a few
 independent initializations of the same architecture at the same inputs (`init_spread`, the mean
 over pairs) tell how much the kernel changes by the random initialization alone. "The kernel
-moved" is said only when its change exceeds both the threshold and this spread
-(``beyond_spread``). A change above the threshold but within the spread still makes the run not
-lazy — a forecast from the initial kernel misses by what the kernel changed, whatever a new seed
-would do — but the sentence says that the initial kernel is itself that uncertain at this width
-(the fluctuation of the empirical kernel at initialization and its change in training both shrink
-as ``1/√width``, Lee et al. 2019). Using the spread as a yardstick is our choice.
+moved" (its criterion fails) when its change exceeds both the threshold and this spread
+(``beyond_spread``). A change above the threshold but within the spread is no larger than what
+choosing another seed does to the kernel — the fluctuation of the empirical kernel at
+initialization and its change in training both shrink as ``1/√width`` (Lee et al. 2019) — so the
+kernel criteria alone cannot decide: the forecast gap on outputs, the direct measure of whether
+the linearization describes the run, decides; without it the run is not called lazy and the
+sentence says what to measure. Using the spread this way is our choice.
 
 The run is lazy when no measured criterion fails. `Laziness.sentence` says so in one line with
 the numbers; the same object feeds every place that states a verdict.
@@ -133,7 +134,10 @@ class Laziness(Result):
         failed: names of the failed criteria ("relative_change", "distance", "forecast_gap").
         first_step: the first step at which a criterion failed, or None (or when the criteria
             were given as single numbers).
-        beyond_spread: whether the kernel's change exceeded the init spread (None without one).
+        beyond_spread: whether the kernel's change exceeded the threshold and the init spread
+            (None without a spread).
+        within_spread: the kernel criteria whose change was above the threshold but within the
+            init spread (left to the forecast gap to decide).
     """
 
     lazy: bool
@@ -147,11 +151,13 @@ class Laziness(Result):
     failed: tuple[str, ...]
     first_step: int | None
     beyond_spread: bool | None
+    within_spread: tuple[str, ...] = ()
 
     def to_dict(self) -> dict:
         """Every number and the sentence as plain Python values (for JSON)."""
         out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
         out["failed"] = list(self.failed)
+        out["within_spread"] = list(self.within_spread)
         out["spread"] = None if self.spread is None else dataclasses.asdict(self.spread)
         return out
 
@@ -219,46 +225,58 @@ def laziness(
         )
     if spread is not None and not isinstance(spread, InitSpread):
         raise TypeError(f"`spread` must be an InitSpread (init_spread), got {type(spread)}.")
+    own = {"relative_change": spread.relative_change if spread else 0.0,
+           "distance": spread.distance if spread else 0.0, "forecast_gap": 0.0}
     limits = {"relative_change": kt, "distance": kt, "forecast_gap": gt}
-    failed, first = [], None
+    gap_measured = curves["forecast_gap"] is not None
+    failed, within, first = [], [], None
     for name, curve in curves.items():
         if curve is None:
             continue
         values, at = curve
         over = values > limits[name]
-        if np.any(over):
-            failed.append(name)
-            if at is not None:
-                s = int(at[int(np.argmax(over))])
-                first = s if first is None else min(first, s)
+        if not np.any(over):
+            continue
+        if np.any(values > max(limits[name], own[name])):
+            over = values > max(limits[name], own[name])
+        else:  # above the threshold, within the init spread: the forecast gap decides
+            within.append(name)
+            if gap_measured:
+                continue
+        failed.append(name)
+        if at is not None:
+            s = int(at[int(np.argmax(over))])
+            first = s if first is None else min(first, s)
     peak = {name: None if c is None else float(np.max(c[0])) for name, c in curves.items()}
     kernel = [n for n in ("relative_change", "distance") if peak[n] is not None]
-    own = None if spread is None else {"relative_change": spread.relative_change,
-                                       "distance": spread.distance}
-    beyond = None if own is None or not kernel else any(
+    beyond = None if spread is None or not kernel else any(
         peak[n] > max(kt, own[n]) for n in kernel)
     parts = []
     if kernel:
         parts.append(_kernel_phrase(peak, kernel, kt, spread))
-    if peak["forecast_gap"] is not None:
+    if gap_measured:
         parts.append(_gap_phrase(peak["forecast_gap"], gt))
     lazy = not failed
     head = "lazy" if lazy else "not lazy" + ("" if first is None else f" (from step {first})")
     sentence = f"{head}: " + "; ".join(parts)
-    if any(n in failed for n in kernel):
-        if beyond is False:
-            sentence += (" — the kernel changed by more than the threshold but no more than "
-                         "between independent initializations: at this width the initial kernel "
-                         "is itself that uncertain")
-        else:
-            sentence += " — the kernel moved"
-            if beyond:
-                sentence += " beyond what the initialization alone changes"
+    if any(n in failed and n not in within for n in kernel):
+        sentence += " — the kernel moved" + (
+            " beyond what the initialization alone changes" if beyond else "")
+    elif within and lazy:
+        sentence += (" — the kernel changed by more than the threshold but no more than between "
+                     "independent initializations, and the outputs follow the forecast")
+    elif within and gap_measured:
+        sentence += (" — the outputs left the forecast, while the kernel changed by more than the "
+                     "threshold but no more than between independent initializations")
+    elif within:
+        sentence += (" — the kernel changed by more than the threshold but no more than between "
+                     "independent initializations: the kernel alone cannot tell; measure the "
+                     "forecast gap on outputs to decide")
     return Laziness(
         lazy=lazy, sentence=sentence, relative_change=peak["relative_change"],
         distance=peak["distance"], forecast_gap=peak["forecast_gap"], spread=spread,
         kernel_threshold=kt, gap_threshold=gt, failed=tuple(failed), first_step=first,
-        beyond_spread=beyond,
+        beyond_spread=beyond, within_spread=tuple(within),
     )
 
 
