@@ -31,6 +31,13 @@ def as_compute(tree, dtype):
     return jax.tree_util.tree_map(cast, tree)
 
 
+def check_flag(name: str, value) -> bool:
+    """``value`` if it is True or False, else a ValueError naming the argument."""
+    if not isinstance(value, bool | np.bool_):
+        raise ValueError(f"`{name}`={value!r} must be True or False.")
+    return bool(value)
+
+
 def check_net(net) -> Net:
     if not isinstance(net, Net):
         raise TypeError(

@@ -33,6 +33,7 @@ import warnings
 import numpy as np
 
 from .._engine import cost as C
+from .._engine.checks import check_flag
 from .._engine.options import tile_shape
 from .._engine.planner import plan_request
 from .blocking import tiles
@@ -77,12 +78,6 @@ def check_store(store):
         f"`store`={store!r} is not a store location: pass a directory path such as "
         "'kernel.zarr', a URL zarr can open, or a zarr store object."
     )
-
-
-def _check_progress(progress) -> bool:
-    if not isinstance(progress, bool):
-        raise ValueError(f"`progress`={progress!r} must be True or False.")
-    return progress
 
 
 def _result_bytes(req, outputs: str) -> int:
@@ -156,7 +151,7 @@ def compute(req, *, outputs, memory, method, store, progress, devices, verify: b
     ``spot_check`` entries of the finished kernel are recomputed independently (`spot_check`).
     """
     store = check_store(store)
-    progress = _check_progress(progress)
+    progress = check_flag("progress", progress)
     checked = check_count(spot_check)
     devs = check_devices(devices)
     index, count = process()
