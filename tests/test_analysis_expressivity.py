@@ -261,3 +261,25 @@ def test_over_inits_fraction_matches_numpy_per_init():
         assert sample.ntk_lambda_min is None and len(sample.results) == 3
     with pytest.raises(TypeError, match="init\\(key\\)` must return an ntkcalc.Net"):
         feature_rank_over_inits(lambda key: key, x)
+
+
+def test_quickstart_feature_rank_against_numpy_on_hidden_activations():
+    # docs/quickstart.md's model and data as written there (float32 parameters and inputs):
+    # reference numpy.linalg.matrix_rank of [tanh(x W + b), 1], the hidden activations recomputed
+    # from the parameters in float32 (numpy then uses float32's eps, as feature_rank does).
+    class MLP(nn.Module):
+        @nn.compact
+        def __call__(self, x):
+            return nn.Dense(4)(nn.tanh(nn.Dense(256)(x)))
+
+    x = np.random.default_rng(0).normal(size=(1000, 11)).astype(np.float32)
+    model = MLP()
+    net = Net.from_linen(model, model.init(jax.random.key(0), x[:1]))
+    p = net.params["Dense_1"]
+    h = np.tanh(x @ np.asarray(p["kernel"]) + np.asarray(p["bias"])[None, :])
+    got = {n: feature_rank(net, x[:n], ntk_gram="none") for n in (200, 1000)}
+    for n, res in got.items():
+        assert res.precision == "float32" and res.num_features == 257
+        assert res.rank == np.linalg.matrix_rank(np.c_[h[:n], np.ones((n, 1), np.float32)])
+    assert got[200].full_rank and got[200].reliable
+    assert got[1000].rank == 257 and "impossible" in got[1000].verdict  # 1000 > 256 + 1
