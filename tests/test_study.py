@@ -83,9 +83,15 @@ def _run(tmp: str):
         for s in SAVED:
             manager.save(s, args=ocp.args.StandardSave({"params": kept[s]}))
         manager.wait_until_finished()
+    # the run's own outputs at every step, as a training loop records them
+    record = jax.jit(lambda p: (model.apply({"params": p}, x), model.apply({"params": p}, xt)))
+    seen = [record(kept[t]) for t in range(STEPS + 1)]
     # the module as a factory (the class), its variables shaped by x[:1]
-    result = analyse_run(f"{tmp}/ckpt", x, labels, module=_Mlp, x_test=xt,
-                         y_test=labels_t, lr=LR, forecast_from=[0, 20], full_batch_gd=True)
+    result = analyse_run(f"{tmp}/ckpt", x, labels, module=_Mlp, x_test=xt, y_test=labels_t,
+                         lr=LR, forecast_from=[0, 20], full_batch_gd=True,
+                         recorded_steps=np.arange(STEPS + 1),
+                         recorded_train=np.stack([f for f, _ in seen]),
+                         recorded_test=np.stack([ft for _, ft in seen]))
     html_path, json_path = result.write(f"{tmp}/report")
     with open(json_path, encoding="utf-8") as fh:
         report = json.load(fh)
@@ -133,8 +139,21 @@ def test_alignment_and_drift_by_their_formulas(run):
         assert table["relative_change"][i] == pytest.approx(
             np.linalg.norm(kernels[s] - k0) / np.linalg.norm(k0), rel=1e-9, abs=1e-14)
     assert table["relative_change"][-1] > 0  # training did move the kernel
-    assert report["laziness"]["forecast_gap"] is not None  # full-batch GD: the gap is measured
     assert result.verdict == report["verdict"] == result.laziness.sentence
+
+
+def test_verdict_gap_is_the_run_against_linearized_training_from_init(run):
+    # The verdict's forecast gap: max_t ‖f_t − f_lin,t‖ / ‖f_0 − y‖ over the recorded steps, with
+    # f_lin from optax SGD on the jax.jvp-linearized model at initialization.
+    result, report, _, hand, kept, data = run
+    lin = _linearized_sgd(hand[0], data["x"], data["y"], STEPS)
+    apply = jax.jit(hand[0].apply)
+    scale = np.linalg.norm(np.asarray(apply(kept[0], data["x"])) - data["y"])
+    gaps = [np.linalg.norm(np.asarray(apply(kept[t], data["x"])) - lin(t, data["x"])) / scale
+            for t in range(STEPS + 1)]
+    assert report["laziness"]["forecast_gap"] == pytest.approx(max(gaps), rel=1e-7)
+    assert report["checkpoints"][0]["forecast"]["gap"] == pytest.approx(gaps, rel=1e-7,
+                                                                         abs=1e-12)
 
 
 def _linearized_sgd(net, x, y, steps):
@@ -165,11 +184,16 @@ def test_forecast_from_a_later_checkpoint_matches_linearized_training(run):
         np.mean((lin(horizon, data["x"]) - data["y"]) ** 2), rel=1e-8)
     assert fc["test_mse"][-1] == pytest.approx(
         np.mean((lin(horizon, data["xt"]) - data["yt"]) ** 2), rel=1e-8)
-    # the gap at the checkpoint itself is 0; at step 40 it compares the run with the forecast
-    assert fc["gap_steps"] == [20, 40] and fc["gap"][0] == pytest.approx(0.0, abs=1e-12)
+    # the gap to the recorded run: 0 at the checkpoint itself, then ‖f_obs − f_lin‖/‖f_20 − y‖
+    assert fc["gap_steps"] == list(range(20, STEPS + 1))
+    assert fc["gap"][0] == pytest.approx(0.0, abs=1e-12)
     f20, f40 = (np.asarray(hand[s](data["x"])) for s in (20, 40))
     want = np.linalg.norm(f40 - lin(20, data["x"])) / np.linalg.norm(f20 - data["y"])
-    assert fc["gap"][1] == pytest.approx(want, rel=1e-8)
+    assert fc["gap"][-1] == pytest.approx(want, rel=1e-8)
+    ft20, ft40 = (np.asarray(hand[s](data["xt"])) for s in (20, 40))
+    want = np.linalg.norm(ft40 - lin(20, data["xt"])) / np.linalg.norm(ft20 - data["yt"])
+    assert fc["test_gap"][-1] == pytest.approx(want, rel=1e-8)
+    assert fc["observed_test_mse"][-1] == pytest.approx(np.mean((ft40 - data["yt"]) ** 2))
 
 
 def test_test_error_matches_scikit_learn_kernel_ridge(run):
@@ -209,7 +233,8 @@ def test_report_files_and_plot(run):
     result, report, html_path, *_ = run
     with open(html_path, encoding="utf-8") as fh:
         text = fh.read()
-    assert text.count("data:image/png;base64,") >= 3 and result.verdict.split(":")[0] in text
+    # overview, drift, two forecasts against the run, two risk curves
+    assert text.count("data:image/png;base64,") == 6 and result.verdict.split(":")[0] in text
     assert json.loads(result.to_json()) == report
     assert len(result.plot().axes) == 4
 
@@ -230,6 +255,12 @@ def test_rejects_bad_arguments(tmp_path):
         analyse_run(pairs, x, np.zeros(4, int), full_batch_gd=True)
     with pytest.raises(ValueError, match="module"):
         analyse_run(pairs, x, np.zeros(4, int), module=object())
+    with pytest.raises(ValueError, match="full_batch_gd"):
+        analyse_run(pairs, x, np.zeros(4, int), recorded_steps=[0, 1],
+                    recorded_train=np.zeros((2, 4, 2)))
+    with pytest.raises(ValueError, match="recorded_train"):
+        analyse_run(pairs, x, np.zeros(4, int), lr=0.1, full_batch_gd=True,
+                    recorded_steps=[0, 1], recorded_train=np.zeros((2, 3, 2)))
 
 
 def test_per_output_forecast_above_the_row_limit_from_net_pairs(run):

@@ -117,10 +117,15 @@ class CheckpointAnswers(Result):
             ``forecast.steps`` more steps (None without ``lr``).
         train_mse, test_mse: (T,) forecast MSE on train and test (test None without a test set);
             None without ``lr``.
-        gap: (S,) the gap ``‖f_obs − f_lin‖_F / ‖f_t − y‖_F`` at the later checkpoints
-            ``gap_steps`` (`laziness.output_gap`), when the run was full-batch gradient descent
-            with ``lr`` (``full_batch_gd``); else None.
+        gap: (S,) the gap ``‖f_obs − f_lin‖_F / ‖f_t − y‖_F`` on the training outputs at the
+            steps ``gap_steps`` after this checkpoint (the later checkpoints, or the recorded
+            outputs when given; `laziness.output_gap`), when the run was full-batch gradient
+            descent with ``lr`` (``full_batch_gd``); else None.
+        test_gap: (S,) the same on the test outputs (scale ``‖f_t(test) − y_test‖_F``), when
+            recorded test outputs were given; else None.
         gap_steps: (S,) the training steps of ``gap``, or None.
+        observed_train_mse, observed_test_mse: (S,) MSE of the run itself at ``gap_steps``
+            (test: with recorded test outputs), or None.
         spectrum: `Spectrum` of the trace kernel on the training set.
         alignment: centered kernel-target alignment of the trace kernel.
         risk: `RiskEstimates` of kernel ridge on the trace kernel (ridges on its axis).
@@ -139,7 +144,10 @@ class CheckpointAnswers(Result):
     train_mse: np.ndarray | None
     test_mse: np.ndarray | None
     gap: np.ndarray | None
+    test_gap: np.ndarray | None
     gap_steps: np.ndarray | None
+    observed_train_mse: np.ndarray | None
+    observed_test_mse: np.ndarray | None
     spectrum: Spectrum
     alignment: float
     risk: RiskEstimates
@@ -283,6 +291,9 @@ def analyse_run(
     forecast_from: Sequence[int] | None = None,
     loss: Loss = "mse",
     full_batch_gd: bool = False,
+    recorded_steps=None,
+    recorded_train=None,
+    recorded_test=None,
     inits: Sequence[Net] | None = None,
     layer: str | None = None,
     threshold: float = DEFAULT_THRESHOLD,
@@ -319,6 +330,10 @@ def analyse_run(
             outputs, and the gap of the forecast from the first checkpoint enters the laziness
             verdict. Leave False for minibatch or adaptive optimizers: the gap would measure the
             optimizer, not laziness.
+        recorded_steps, recorded_train, recorded_test: the run's own outputs recorded while
+            training (with ``full_batch_gd``): (S,) increasing steps, (S, N, O) outputs on
+            ``x_train`` and optionally (S, M, O) on ``x_test``. The forecasts are compared with
+            these at every recorded step instead of at the checkpoints alone.
         inits: Nets of the same architecture at independent initializations: the init-spread
             yardstick of the verdict (`drift`).
         layer: the features of the interpolation check (`feature_rank`'s ``layer``; default its
@@ -372,6 +387,10 @@ def analyse_run(
                              num_classes=o)
         _checks.same_outputs("y_test", yt, want=o, ref="the model's outputs")
         labels_t = _class_labels(y_test, yt)
+    record = _recorded(recorded_steps, recorded_train, recorded_test, full_batch_gd=full_batch_gd,
+                       n=n, o=o, m=None if xt is None else xt.shape[0])
+    if record is None and full_batch_gd:  # the checkpoints are the recorded outputs
+        record = (step_arr, np.stack(outputs), None)
     options = {"progress": progress}
     cautions = _Cautions()
     with cautions.watch():
@@ -391,8 +410,7 @@ def analyse_run(
                 ft=None if xt is None else np.asarray(run(nets[i].params, nets[i].state, xt)),
                 lr=lr, loss=loss,
                 horizon=span, ridges=ridges, full_rows=full_kernel_rows, options=options,
-                later=[(int(t), outputs[j]) for j, t in enumerate(step_arr) if t >= s]
-                if full_batch_gd else None, cautions=cautions))
+                record=record, cautions=cautions))
     verdict = dr.laziness
     first = answers[0] if answers and answers[0].step == step_arr[0] else None
     if first is not None and first.gap is not None:
@@ -465,6 +483,37 @@ def _checkpoints(source, steps, load: dict, x) -> tuple[np.ndarray, list[Net]]:
     return step_arr.astype(np.int64), nets
 
 
+def _recorded(steps, train, test, *, full_batch_gd: bool, n: int, o: int, m: int | None):
+    """``(steps (S,), train (S, N, O), test (S, M, O) or None)`` validated, or None."""
+    if steps is None and train is None and test is None:
+        return None
+    if not full_batch_gd:
+        raise ValueError(
+            "Recorded outputs are compared with the forecasts only for a run of full-batch "
+            "gradient descent with `lr`: pass full_batch_gd=True (and `lr`), or leave out "
+            "`recorded_steps`, `recorded_train` and `recorded_test`.")
+    if steps is None or train is None:
+        raise ValueError("`recorded_steps` and `recorded_train` go together: pass both.")
+    at = np.asarray(steps)
+    if at.ndim != 1 or not np.issubdtype(at.dtype, np.integer) or np.any(np.diff(at) <= 0):
+        raise ValueError(
+            f"`recorded_steps` must be a 1-D increasing array of integers, got {steps!r}.")
+    out = []
+    for name, arr, rows in (("recorded_train", train, n), ("recorded_test", test, m)):
+        if arr is None:
+            out.append(None)
+            continue
+        if rows is None:
+            raise ValueError("`recorded_test` needs `x_test` and `y_test`.")
+        arr = _checks.finite_array(name, arr)
+        if arr.shape[:2] != (at.size, rows) or int(np.prod(arr.shape[2:])) != o:
+            raise ValueError(
+                f"`{name}` is {arr.shape}; it must be ({at.size}, {rows}, {o}): the outputs at "
+                "each of `recorded_steps` on every example.")
+        out.append(arr.reshape(at.size, rows, o))
+    return at.astype(np.int64), out[0], out[1]
+
+
 def _forecast_steps(forecast_from, step_arr: np.ndarray) -> np.ndarray:
     if forecast_from is None:
         return np.unique(step_arr[[0, -1]])
@@ -530,19 +579,19 @@ def _mse(f, y) -> np.ndarray:
 
 
 def _forecast_grid(horizon: int, later: list[int]) -> np.ndarray:
-    """0, about 40 log-spaced steps up to ``horizon``, and the offsets of later checkpoints."""
+    """0, about 40 log-spaced steps up to ``horizon``, and the offsets of the recorded steps."""
     grid = np.round(np.geomspace(1, horizon, 40)).astype(np.int64)
     return np.unique(np.concatenate([[0], grid, np.asarray(later, np.int64)]))
 
 
 def _answers(net, step, x, y, xt, yt, labels_t, *, kernel, f, ft, lr, loss, horizon, ridges,
-             full_rows, options, later, cautions) -> CheckpointAnswers:
+             full_rows, options, record, cautions) -> CheckpointAnswers:
     """Forecast (from ``f``, ``ft``: the outputs at this checkpoint), spectrum, alignment, risk
     and kernel-ridge test error at one checkpoint; ``kernel`` is its (N, N) trace kernel."""
     n, o = y.shape
     k = np.asarray(kernel)
     kx = None  # the test-train trace kernel
-    fc = train_mse = test_mse = gap = gap_steps = None
+    fc = train_mse = test_mse = gap = test_gap = gap_steps = seen = seen_test = None
     kernel_used = "trace"
     if lr is not None:
         ft = None if ft is None else ft.reshape(len(xt), o)
@@ -556,18 +605,23 @@ def _answers(net, step, x, y, xt, yt, labels_t, *, kernel, f, ft, lr, loss, hori
             k_fc = per_output_kernel(_trace_kernel(k, o))
             kx = None if xt is None else np.asarray(ntk(net, xt, x, outputs="trace", **options))
             kx_fc = None if kx is None else per_output_kernel(_trace_kernel(kx, o))
-        offsets = [] if later is None else [t - step for t, _ in later if t - step <= horizon]
+        keep = None if record is None else (record[0] >= step) & (record[0] <= step + horizon)
+        offsets = [] if keep is None else (record[0][keep] - step).tolist()
         fc = forecast(k_fc, y, f, lr=lr, steps=_forecast_grid(horizon, offsets),
                       k_test_train=kx_fc, f0_test=ft, y_test=yt, loss=loss, progress=False)
         kernel_used = fc.kernel
         train_mse = _mse(fc.train_outputs, y)
         test_mse = None if yt is None else _mse(fc.test_outputs, yt)
-        if later is not None:
-            kept = [(t, out) for t, out in later if t - step <= horizon]
-            at = np.searchsorted(fc.steps, [t - step for t, _ in kept])
-            gap_steps = np.asarray([t for t, _ in kept], dtype=np.int64)
-            gap = output_gap(np.stack([out for _, out in kept]), fc.train_outputs[at],
-                             scale=float(np.linalg.norm(f - y)), steps=gap_steps)
+        if keep is not None and np.any(keep):
+            gap_steps, seen = record[0][keep], record[1][keep]
+            at = np.searchsorted(fc.steps, gap_steps - step)
+            gap = output_gap(seen, fc.train_outputs[at], scale=float(np.linalg.norm(f - y)),
+                             steps=gap_steps, observed_name="recorded_train")
+            if record[2] is not None:
+                seen_test = record[2][keep]
+                test_gap = output_gap(seen_test, fc.test_outputs[at],
+                                      scale=float(np.linalg.norm(ft - yt)), steps=gap_steps,
+                                      observed_name="recorded_test")
     elif xt is not None:
         kx = np.asarray(ntk(net, xt, x, outputs="trace", **options))
     spec = spectrum(kernel, num_examples=n)
@@ -584,7 +638,9 @@ def _answers(net, step, x, y, xt, yt, labels_t, *, kernel, f, ft, lr, loss, hori
         acc_r = None if labels_t is None else float(np.mean(np.argmax(pred[i], 1) == labels_t))
     return CheckpointAnswers(
         step=step, kernel=kernel_used, kernel_dtype=str(k.dtype), forecast=fc,
-        train_mse=train_mse, test_mse=test_mse, gap=gap, gap_steps=gap_steps, spectrum=spec,
+        train_mse=train_mse, test_mse=test_mse, gap=gap, test_gap=test_gap, gap_steps=gap_steps,
+        observed_train_mse=None if seen is None else _mse(seen, y),
+        observed_test_mse=None if seen_test is None else _mse(seen_test, yt), spectrum=spec,
         alignment=alignment(k, y), risk=est, ridge=float(r), loo=float(est.loo[i]),
         gcv=float(est.gcv[i]), test_mse_ridge=mse_r, test_accuracy_ridge=acc_r,
         test_mse_by_ridge=held,
@@ -628,7 +684,9 @@ def _answers_numbers(a: CheckpointAnswers) -> dict:
             "test_mse": a.test_mse, "train_accuracy": fc.train_accuracy,
             "test_accuracy": fc.test_accuracy, "max_stable_lr": fc.max_stable_lr,
             "stable": fc.stable,
-            "gap": a.gap, "gap_steps": a.gap_steps,
+            "gap": a.gap, "test_gap": a.test_gap, "gap_steps": a.gap_steps,
+            "observed_train_mse": a.observed_train_mse,
+            "observed_test_mse": a.observed_test_mse,
         },
         "spectrum": {"eigenvalues": spec.eigenvalues, "effective_rank": spec.effective_rank,
                      "condition_number": spec.condition_number,
@@ -694,6 +752,16 @@ def _html(r: RunAnalysis) -> str:
         [(a.step, a.kernel, None if a.train_mse is None else a.train_mse[-1],
           None if a.test_mse is None else a.test_mse[-1], a.ridge, a.loo, a.gcv,
           a.test_mse_ridge, a.test_accuracy_ridge) for a in r.checkpoints]))
+    for a in r.checkpoints:
+        if a.observed_test_mse is None:
+            continue
+        at = np.searchsorted(a.forecast.steps, a.gap_steps - a.step)
+        fig = plots.forecast_figure(
+            a.gap_steps, observed_train=a.observed_train_mse, forecast_train=a.train_mse[at],
+            observed_test=a.observed_test_mse, forecast_test=a.test_mse[at], train_gap=a.gap,
+            test_gap=a.test_gap, threshold=r.laziness.gap_threshold)
+        fig.axes[0].set_title(f"Forecast from step {a.step} vs the run")
+        parts.append(f'<img src="data:image/png;base64,{_png(fig)}">')
     for a in r.checkpoints:
         if a.test_mse_by_ridge is None:
             continue
