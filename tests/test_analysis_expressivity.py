@@ -171,6 +171,9 @@ def test_default_features_are_the_readout_input():
     ref = reference_full(net, x).transpose(0, 2, 1, 3).reshape(60, 60)
     assert res.ntk_lambda_min == pytest.approx(np.linalg.eigvalsh(ref)[0], rel=1e-8)
     assert res.ntk_spectrum.kind == "full" and res.ntk_spectrum.numerical_rank == 60
+    # Choosing outputs (Net.select_outputs) keeps the same readout features.
+    picked = feature_rank(net.select_outputs(index=[0, 2]), x, ntk_gram="none")
+    assert picked.sigma_min == pytest.approx(res.sigma_min, rel=1e-12)
     # The quickstart's old line measured the readout's 3 outputs (+ 1), not the hidden layer.
     assert feature_rank(net, x, layer="Dense_0", ntk_gram="none").rank == 4
     # n > width + 1: impossible, said plainly; the rank still matches numpy.

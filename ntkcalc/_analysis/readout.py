@@ -1,9 +1,9 @@
 """The features a model's final linear readout reads, found in its traced jaxpr.
 
-A model ``f(x) = a · (H(x) W) + b`` (any bias, any scale or sign, reshapes and dtype casts after
-the product) has a final linear readout W, and H(x) — the operand of that last ``dot_general``
-that depends on the input — is the post-activation feature vector of the last hidden layer. Those
-are the features of the interpolation condition rank [H, 1] = n.
+A model ``f(x) = a · (H(x) W) + b`` (any bias, any scale or sign, reshapes, dtype casts and
+selections of outputs after the product) has a final linear readout W, and H(x) — the operand of
+that last ``dot_general`` that depends on the input — is the post-activation feature vector of the
+last hidden layer. Those are the features of the interpolation condition rank [H, 1] = n.
 
 The per-example function is traced once (as the kernel engine traces it), the output is followed
 backwards through ops that keep it a linear function of the readout's product, into nested calls,
@@ -24,6 +24,9 @@ RESHAPING = frozenset(
     {"reshape", "squeeze", "expand_dims", "convert_element_type", "copy", "copy_p", "transpose",
      "neg", "reduce_precision"}
 )
+#: Ops that pick entries of their first operand (outputs chosen by ``Net.select_outputs``): a
+#: readout of some outputs is the readout with some columns of W.
+SELECTING = frozenset({"slice", "dynamic_slice", "gather", "rev"})
 #: Binary ops that keep it linear when their other operand does not depend on the input
 #: (a bias, a fixed scale); for ``div`` only with the input-dependent operand on top.
 AFFINE = frozenset({"add", "sub", "mul", "div", "add_any"})
@@ -66,6 +69,8 @@ def _find(jaxpr, var, dep: dict, prefix: tuple[int, ...]) -> tuple[tuple[int, ..
                     why="the last product multiplies two input-dependent values (attention-like)"))
             return prefix + (i,), live[0][0]
         if name in RESHAPING and len(live) == 1:
+            var = live[0][1]
+        elif name in SELECTING and len(live) == 1 and live[0][0] == 0:
             var = live[0][1]
         elif name in AFFINE and len(live) == 1 and not (name == "div" and live[0][0] == 1):
             var = live[0][1]
