@@ -7,7 +7,9 @@ gradient for one example of four (docs/cautions.md). The check picks ``count`` e
 — diagonal ones first for K(X, X), then seeded random pairs — and recomputes each from its
 definition Θ[i, j, a, b] = Σ_p ∂f_a(x1_i)/∂θ_p · ∂f_b(x2_j)/∂θ_p with ``jax.jacrev`` of the model
 on that one example (no ``vmap``, no blocking, no structured rules), then compares. Cost: one
-reverse-mode Jacobian per distinct example (about O backward passes each), compiled once.
+two reverse-mode Jacobians per entry (about O backward passes each) and their contraction, in one
+compiled step (compiled once per model, shapes and outputs mode); nothing leaves the device but
+the entries.
 
 Tolerance: |K − K_ref| ≤ √ε · ‖J(x1_i)‖ ‖J(x2_j)‖ per entry (ε: the dtype's machine epsilon;
 ‖J‖ the Frobenius norm of the example's Jacobian, which bounds |Θ[i, j, a, b]| by
@@ -64,8 +66,10 @@ def pairs(n1: int, n2: int, count: int, *, symmetric: bool, seed: int = 0) -> li
 
 
 @functools.cache
-def _jacobian_fn(call, treedef, selected: tuple[int, ...]):
-    """jit(x ↦ [∂f(x)/∂θ_k for selected leaves k]) for one example, each (O, size_k)."""
+def _entries_fn(call, treedef, selected: tuple[int, ...], groups: tuple[int, ...],
+                num_groups: int, outputs: str):
+    """jit((x_a, x_b) ↦ per group: (Θ[a, b] in this outputs mode, ‖J(x_a)‖·‖J(x_b)‖)), from the
+    two examples' Jacobians by jax.jacrev, each example evaluated alone (batch of one)."""
 
     def f(diff, leaves, state, x):
         full = list(leaves)
@@ -75,22 +79,31 @@ def _jacobian_fn(call, treedef, selected: tuple[int, ...]):
         return jnp.reshape(out, (-1,))
 
     def jac(diff, leaves, state, x):
-        js = jax.jacrev(f)(diff, leaves, state, x)
-        return [j.reshape(j.shape[0], -1) for j in js]
+        return [j.reshape(j.shape[0], -1) for j in jax.jacrev(f)(diff, leaves, state, x)]
 
-    return jax.jit(jac)
+    def entries(diff, leaves, state, xa, xb):
+        ja, jb = jac(diff, leaves, state, xa), jac(diff, leaves, state, xb)
+        result = []
+        for g in range(num_groups):
+            mine = [k for k, kg in enumerate(groups) if kg == g]
+            full = sum(jnp.matmul(ja[k], jb[k].T, precision="highest") for k in mine)
+            norm = jnp.sqrt(sum(jnp.sum(ja[k] ** 2) for k in mine)
+                            * sum(jnp.sum(jb[k] ** 2) for k in mine))
+            result.append((_mode(full, outputs), norm))
+        return result
+
+    return jax.jit(entries)
 
 
-def _entry(ja, jb, outputs: str) -> np.ndarray:
-    """Θ[i, j] in this outputs mode from the two examples' Jacobians (O, P)."""
-    full = ja @ jb.T
+def _mode(full, outputs: str):
+    """Θ[i, j] in this outputs mode from its (O, O) block."""
     if outputs == "full":
         return full
     if outputs == "diagonal":
-        return np.diagonal(full).copy()
+        return jnp.diagonal(full)
     if outputs == "trace":
-        return np.trace(full)
-    return full.sum()  # logit-sum: the kernel of Σ_a f_a
+        return jnp.trace(full)
+    return jnp.sum(full)  # logit-sum: the kernel of Σ_a f_a
 
 
 def spot_check(req, kernels, *, count: int, outputs: str) -> int:
@@ -101,32 +114,18 @@ def spot_check(req, kernels, *, count: int, outputs: str) -> int:
     x1 = req.x1
     x2 = x1 if req.x2 is None else req.x2
     sel = req.selection
+    fn = _entries_fn(req.net.call, jax.tree_util.tree_structure(req.params),
+                     tuple(sel.indices), tuple(sel.group_index()), len(sel.group_names), outputs)
     leaves = jax.tree_util.tree_leaves(req.params)
-    treedef = jax.tree_util.tree_structure(req.params)
-    fn = _jacobian_fn(req.net.call, treedef, tuple(sel.indices))
-    group_of = np.asarray(sel.group_index())
     chosen = pairs(x1.shape[0], x2.shape[0], count, symmetric=req.x2 is None)
-    cache: dict = {}
-
-    def jac(x, i):
-        key = (id(x), i)
-        if key not in cache:
-            with jax.default_matmul_precision("highest"):
-                js = fn(req.diff, leaves, req.state, jnp.asarray(x[i]))
-            per_group = []
-            for g in range(len(sel.group_names)):
-                parts = [np.asarray(j) for j, k in zip(js, group_of, strict=True) if k == g]
-                per_group.append(np.concatenate(parts, axis=1))
-            cache[key] = per_group
-        return cache[key]
-
     eps = float(np.finfo(req.dtype).eps)
     for i, j in chosen:
-        ja, jb = jac(x1, i), jac(x2, j)
-        for g, kernel in enumerate(kernels):
-            want = _entry(ja[g], jb[g], outputs)
+        with jax.default_matmul_precision("highest"):
+            per_group = fn(req.diff, leaves, req.state, jnp.asarray(x1[i]), jnp.asarray(x2[j]))
+        for g, (kernel, (want, norm)) in enumerate(zip(kernels, per_group, strict=True)):
+            want = np.asarray(want)
             got = np.asarray(kernel[i, j])
-            tol = np.sqrt(eps) * np.linalg.norm(ja[g]) * np.linalg.norm(jb[g])
+            tol = np.sqrt(eps) * float(norm)
             gap = float(np.max(np.abs(got - want)))
             if not gap <= tol:
                 name = "" if len(kernels) == 1 else f" of group {sel.group_names[g]!r}"
