@@ -78,6 +78,11 @@ FLOAT32_NOTE = (
     "Kernels are float32 (about 7 significant digits): small eigenvalues, the numerical rank and "
     "leave-one-out estimates near interpolation are at rounding level. Enable JAX x64 for float64."
 )
+GAP_NOTE = (
+    "Not lazy: the run's training outputs depart from the forecast of the model linearized at "
+    "step {step} by up to {gap:.1%} of the initial residual (threshold {tol:.0%}), so the "
+    "forecasts describe the linearized model, not this network."
+)
 NOT_GD_NOTE = (
     "The forecasts are of full-batch gradient descent on L = (1/N) Σ_i ½‖f(x_i) − y_i‖² with "
     "lr={lr:g}; they were not compared with the checkpoints (full_batch_gd=False), so the laziness "
@@ -230,7 +235,7 @@ class RunAnalysis(Result):
                        label=f"threshold {d.threshold:.0%}")
         change.set(xlabel="training step", ylabel="kernel change",
                    title="lazy" if self.lazy else "not lazy")
-        change.legend(fontsize="small", frameon=False)
+        change.legend(fontsize="small", frameon=False, loc="center right")
         align.plot(d.steps, d.alignment, "o-", color=plots.THIRD)
         align.set(xlabel="training step", ylabel="centered alignment A(K_t, YYᵀ)",
                   title="Kernel-label alignment")
@@ -394,10 +399,10 @@ def analyse_run(
     options = {"progress": progress}
     cautions = _Cautions()
     with cautions.watch():
-        dr = drift(nets, x, y_train, steps=step_arr.tolist(), inits=inits, threshold=threshold,
+        dr = drift(nets, x, y, steps=step_arr.tolist(), inits=inits, threshold=threshold,
                    **options)
+        groups = _groups(nets[0], nets[-1], x, threshold=threshold, options=options)
     dtype = str(dr.kernels.dtype)
-    groups = _groups(nets[0], nets[-1], x, threshold=threshold, options=options)
     ranks = tuple(_feature_rank(net, x, layer, step, cautions)
                   for net, step in zip(nets, step_arr, strict=True))
     span = max(int(step_arr[-1] - step_arr[0]), 1) if horizon is None else horizon
@@ -418,13 +423,19 @@ def analyse_run(
                            steps=dr.steps, forecast_gap=first.gap, gap_steps=first.gap_steps,
                            spread=dr.laziness.spread, kernel_threshold=threshold)
     notes = list(dr.notes)
+    if "forecast_gap" in verdict.failed:
+        notes.append(GAP_NOTE.format(step=first.step, gap=verdict.forecast_gap,
+                                     tol=verdict.gap_threshold))
     if dtype == "float32":
         notes.append(FLOAT32_NOTE)
     if lr is not None and not full_batch_gd:
         notes.append(NOT_GD_NOTE.format(lr=lr))
     kinds = {
         "drift, alignment, spectrum, risk, groups": f"trace (N, N) = ({n}, {n})",
+        "test error of kernel ridge": "trace, test × train" if xt is not None else "none",
         "forecast": ", ".join(sorted({a.kernel for a in answers})) if lr is not None else "none",
+        "feature rank": "features of the readout's input (no kernel)" if layer is None
+        else f"features of {layer!r} (no kernel)",
         "dtype": dtype,
     }
     return RunAnalysis(
