@@ -6,7 +6,7 @@ import warnings
 import numpy as np
 import pytest
 
-from ntkcalc._analysis.rank import MARGIN, precision_of, rank_verdict
+from ntkcalc._analysis.rank import MARGIN, precision_of, rank_verdict, rounding_tolerance
 
 
 def _verdict(a, **kw):
@@ -25,6 +25,7 @@ def test_rank_and_tolerance_match_numpy_matrix_rank(dtype):
         s = np.linalg.svd(a.astype(np.float64), compute_uv=False)
         assert v.rank == np.linalg.matrix_rank(a) == rank
         assert v.tol == pytest.approx(s[0] * 12 * np.finfo(dtype).eps, rel=1e-12)
+        assert v.tol == rounding_tolerance(s[0], a.shape, dtype)
         assert v.precision == np.dtype(dtype).name and v.full_rank == (rank == 9)
 
 

@@ -135,6 +135,13 @@ def machine_eps(dtype: np.dtype) -> float:
         return float(ml_dtypes.finfo(dtype).eps)
 
 
+def rounding_tolerance(sigma_max: float, shape: tuple[int, ...], precision) -> float:
+    """``σ_max · max(shape) · ε(precision)``: the size of rounding in a singular value (or
+    eigenvalue) of a matrix computed at ``precision`` — the tolerance of every rank here, and the
+    yardstick for "below zero by more than rounding" (``−MARGIN ·`` this) in PSD checks."""
+    return float(sigma_max) * max(shape) * machine_eps(precision_of(None, precision))
+
+
 def rank_verdict(
     values,
     *,
@@ -163,7 +170,7 @@ def rank_verdict(
     """
     s = np.sort(np.abs(np.asarray(values, dtype=np.float64)))[::-1]
     sigma_max = float(s[0]) if s.size else 0.0
-    used = sigma_max * max(shape) * machine_eps(precision) if tol is None else float(tol)
+    used = rounding_tolerance(sigma_max, shape, precision) if tol is None else float(tol)
     rank = int(np.count_nonzero(s > used))
     smallest = float(s[rank - 1]) if rank else 0.0
     margin = smallest / used if used > 0 else np.inf
