@@ -30,8 +30,9 @@ import numpy as np
 import optax
 import orbax.checkpoint as ocp
 import pytest
+from flax import nnx
 from helpers import assert_close, f64, reduce_mode, reference_full
-from sklearn.datasets import load_digits
+from sklearn.datasets import load_digits, load_iris
 from sklearn.kernel_ridge import KernelRidge
 
 import ntkcalc
@@ -283,3 +284,38 @@ def test_per_output_forecast_above_the_row_limit_from_net_pairs(run):
     assert_close(last.forecast.train_outputs[-1], want, rtol=1e-9)
     assert last.gap is None  # full_batch_gd not claimed: no comparison with the run
     assert result.laziness.forecast_gap is None
+
+
+class _NnxMlp(nnx.Module):
+    """A small nnx MLP: 4 iris features, 8 tanh units, 3 classes."""
+
+    def __init__(self, rngs):
+        self.hidden = nnx.Linear(4, 8, rngs=rngs, param_dtype=jnp.float64)
+        self.readout = nnx.Linear(8, 3, rngs=rngs, param_dtype=jnp.float64)
+
+    def __call__(self, x):
+        return self.readout(nnx.tanh(self.hidden(x)))
+
+
+def test_nnx_checkpoints_from_a_factory(tmp_path):
+    # An nnx model saved with orbax at two steps (two optax SGD steps apart) on scikit-learn's
+    # iris; the workflow's kernels against the dense jax.jacrev reference on Nets built by hand.
+    iris = load_iris()
+    x, labels = iris.data[::10], iris.target[::10]  # 15 examples, all three classes
+    model = _NnxMlp(nnx.Rngs(0))
+    hand = {0: ntkcalc.Net.from_nnx(model)}
+    params = hand[0].params
+    kept = _sgd(lambda p: _mse_loss(hand[0].apply(p, x), np.eye(3)[labels]), params, 2)
+    hand[2] = hand[0].replace(params=kept[2])
+    options = ocp.CheckpointManagerOptions(max_to_keep=None, enable_async_checkpointing=False)
+    with ocp.CheckpointManager(tmp_path / "ckpt", options=options) as manager:
+        for s in (0, 2):
+            nnx.update(model, kept[s])
+            manager.save(s, args=ocp.args.StandardSave(nnx.state(model)))
+        manager.wait_until_finished()
+    result = analyse_run(tmp_path / "ckpt", x, labels, module=lambda: _NnxMlp(nnx.Rngs(7)))
+    assert result.checkpoints[0].forecast is None and result.checkpoints[1].step == 2
+    for i, s in enumerate((0, 2)):
+        want = reduce_mode(reference_full(hand[s], x), "trace")
+        assert_close(result.drift.kernels[i], want, rtol=1e-10)
+    assert {g.group for g in result.groups} == {"hidden", "readout"}

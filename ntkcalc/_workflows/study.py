@@ -42,6 +42,7 @@ import numpy as np
 
 from .._adapters.net import Net
 from .._analysis import _checks
+from .._analysis._batches import batch_slices, pad_rows
 from .._analysis._result import Result
 from .._analysis.alignment import alignment
 from .._analysis.expressivity import FeatureRank, feature_rank
@@ -66,6 +67,10 @@ FULL_KERNEL_ROWS = 2048
 #: Ridge grid of the risk estimates: ``mean(diag K) · 10^p`` for p in [RIDGE_DECADES] (our choice,
 #: as in the demo: from near interpolation to far above the kernel's scale).
 RIDGE_DECADES = (-6.0, 2.0)
+
+#: Examples per forward pass when the workflow evaluates the network (the last batch padded, so
+#: each batch shape compiles once).
+OUTPUT_BATCH = 1024
 
 Loss = Literal["mse", "cross-entropy"]
 
@@ -374,7 +379,7 @@ def analyse_run(
     xt = None if x_test is None else _checks.examples("x_test", x_test)
 
     run = jax.jit(nets[0].call)  # every Net shares the first one's call (`Net.replace`)
-    outputs = [np.asarray(run(n.params, n.state, x)) for n in nets]
+    outputs = [_outputs(run, net, x) for net in nets]
     n, o = outputs[0].shape[0], int(np.prod(outputs[0].shape[1:], dtype=np.int64))
     outputs = [f.reshape(n, o) for f in outputs]
     bad = [int(s) for s, f in zip(step_arr, outputs, strict=True) if not np.all(np.isfinite(f))]
@@ -412,7 +417,7 @@ def analyse_run(
         with cautions.watch():
             answers.append(_answers(
                 nets[i], int(s), x, y, xt, yt, labels_t, kernel=dr.kernels[i], f=outputs[i],
-                ft=None if xt is None else np.asarray(run(nets[i].params, nets[i].state, xt)),
+                ft=None if xt is None else _outputs(run, nets[i], xt),
                 lr=lr, loss=loss,
                 horizon=span, ridges=ridges, full_rows=full_kernel_rows, options=options,
                 record=record, cautions=cautions))
@@ -492,6 +497,13 @@ def _checkpoints(source, steps, load: dict, x) -> tuple[np.ndarray, list[Net]]:
     nets = [first] + [p[1] if p[1].call is not first.call else
                       first.replace(params=p[1].params, state=p[1].state) for p in pairs[1:]]
     return step_arr.astype(np.int64), nets
+
+
+def _outputs(run, net: Net, x) -> np.ndarray:
+    """The network's outputs on ``x`` in batches of `OUTPUT_BATCH` examples."""
+    size = min(OUTPUT_BATCH, x.shape[0])
+    return np.concatenate([np.asarray(run(net.params, net.state, pad_rows(x[a:b], size)))[:b - a]
+                           for a, b in batch_slices(x.shape[0], size)])
 
 
 def _recorded(steps, train, test, *, full_batch_gd: bool, n: int, o: int, m: int | None):
