@@ -131,6 +131,12 @@ def test_callable_layer_and_bad_input():
         feature_rank(net, x, layer=3)
     with pytest.raises(ValueError, match="non-finite"):
         feature_rank_of(np.full((3, 3), np.nan))
+    with pytest.raises(TypeError, match="`net` must be an ntkcalc.Net"):
+        feature_rank(params, x)
+    with pytest.raises(ValueError, match="`ntk_gram`='some' is not known"):
+        feature_rank(net, x, ntk_gram="some")
+    with pytest.raises(ValueError, match="`dtype`='float16' is not known"):
+        feature_rank(net, x, dtype="float16")
 
 
 class _Quickstart(nn.Module):

@@ -24,7 +24,7 @@ import numpy as np
 import scipy.linalg
 
 from .._adapters import net as _net
-from .._engine.checks import as_compute
+from .._engine.checks import as_compute, check_net
 from .._engine.options import check_choice
 from .._kernel import Precision, ntk, precision_scope
 from . import _checks
@@ -297,6 +297,7 @@ def feature_rank(
         `FeatureRank` with ``layer``, ``features``, ``precision``, ``reliable``, ``verdict`` and,
         when computed, ``ntk_lambda_min`` and ``ntk_spectrum``.
     """
+    net = check_net(net)
     batch = _checks.positive_int("batch", batch)
     x = _checks.examples("x", x)
     check_choice("ntk_gram", ntk_gram, ("auto", "full", "none"))
