@@ -126,16 +126,42 @@ CASES = {
     "cka": (ntkcalc.cka, lambda: dict(k1=K, k2=K), {"k1": bad_kernel(K), "k2": bad_kernel(K)}),
     "kernel_distance": (ntkcalc.kernel_distance, lambda: dict(k1=K, k2=K), {
         "k1": bad_kernel(K), "k2": bad_kernel(K)}),
+    "task_spectrum": (ntkcalc.task_spectrum, lambda: dict(k=K, y=Y), {
+        "k": bad_kernel(K), "y": bad_batch(Y, feature_ok=lambda s: True)}),
+    "risk": (ntkcalc.risk, lambda: dict(k_train=K, y_train=Y, ridges=[0.1, 1.0]), {
+        "k_train": bad_kernel(K), "y_train": bad_batch(Y, feature_ok=lambda s: True),
+        "ridges": st.one_of(st.just([]), st.just([-1.0]), st.just([np.nan]), junk)}),
+    "forecast": (ntkcalc.forecast, lambda: dict(k_train=K, y_train=Y, f0_train=0 * Y, lr=0.1,
+                                                steps=[0, 10], progress=False), {
+        "k_train": bad_kernel(K), "y_train": bad_batch(Y, feature_ok=lambda s: True),
+        "lr": bad_positive, "steps": st.one_of(st.just([-1]), st.just([1.5]), junk)}),
+    "estimate_trace": (ntkcalc.estimate_trace, lambda: dict(k=K, num_queries=3, seed=0), {
+        "k": bad_kernel(K), "num_queries": st.one_of(st.integers(max_value=0), junk),
+        "seed": st.one_of(st.floats(), junk)}),
+    "pump_readings": (ntkcalc.pump_readings, lambda: dict(n_train=8, n_test=4), {
+        "n_train": st.one_of(st.integers(max_value=0), junk),
+        "n_test": st.one_of(st.integers(max_value=-1), junk)}),
 }
 
-#: Functions whose validation still lets some malformed values through to numpy (ragged nested
-#: lists, complex kernels cast with only numpy's ComplexWarning). Strict: when one is fixed its
-#: case XPASSes and fails this suite until it moves into the checked table.
+#: Arguments whose validation still lets some malformed values through to numpy (ragged nested
+#: lists, complex kernels cast with only numpy's ComplexWarning, booleans, objects). Strict:
+#: when one is fixed its case XPASSes and fails this suite until it moves into the checked table.
 KNOWN_GAPS = {("spectrum", "k"), ("ridge_fit", "k_train"), ("ridge_fit", "y_train"),
               ("alignment", "k"), ("alignment", "y"), ("cka", "k1"), ("cka", "k2"),
-              ("kernel_distance", "k1"), ("kernel_distance", "k2")}
-GAP = pytest.mark.xfail(strict=True, reason="analysis input validation: ragged lists and complex "
-                                            "kernels reach numpy (issue 12)")
+              ("kernel_distance", "k1"), ("kernel_distance", "k2"), ("task_spectrum", "k"),
+              ("task_spectrum", "y"), ("risk", "k_train"), ("risk", "y_train"),
+              ("forecast", "k_train"), ("forecast", "y_train"),
+              ("forecast", "lr"),  # lr=True is taken as 1.0
+              ("forecast", "steps"),
+              ("estimate_trace", "seed")}  # a list or an object as seed reaches numpy
+GAP = pytest.mark.xfail(strict=True, reason="analysis input validation: ragged lists, complex "
+                                            "kernels, booleans or objects reach numpy (issue 12)")
+#: Arguments passed by position (as the signatures have them before ``*``).
+POSITIONAL = {"ntk": ("net", "x1"), "ntk_by_layer": ("net", "x1"), "plan": ("net", "x1"),
+              "spectrum": ("k",), "ridge_fit": ("k_train", "y_train"), "alignment": ("k", "y"),
+              "cka": ("k1", "k2"), "kernel_distance": ("k1", "k2"), "task_spectrum": ("k", "y"),
+              "risk": ("k_train", "y_train"), "forecast": ("k_train", "y_train", "f0_train"),
+              "estimate_trace": ("k",), "pump_readings": ("n_train", "n_test")}
 PAIRS = [pytest.param(name, arg, id=f"{name}-{arg}",
                       marks=[GAP] if (name, arg) in KNOWN_GAPS else [])
          for name, (_, _, bad) in CASES.items() for arg in bad]
@@ -154,8 +180,7 @@ def test_malformed_argument_is_named(name, arg, data):
     kwargs = valid()
     value = data.draw(bad[arg], label=arg)
     kwargs[arg] = value
-    positional = [kwargs.pop(p) for p in list(kwargs) if p in ("net", "x1", "k", "k1", "k2",
-                                                               "k_train", "y_train", "y")]
+    positional = [kwargs.pop(p) for p in list(kwargs) if p in POSITIONAL.get(name, ())]
     if name in ("ntk", "ntk_by_layer", "plan") and "x2" in kwargs:
         positional.append(kwargs.pop("x2"))
     try:
