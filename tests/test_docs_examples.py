@@ -81,10 +81,11 @@ def test_examples_run(page):
 def test_readme_kernel_matches_dense_reference():
     # Reference: the whole-batch jax.jacrev Jacobian contracted by an einsum (the definition
     # Θ = J Jᵀ), on the README's first examples.
-    from helpers import reduce_mode, reference_full
+    from helpers import f64, reduce_mode, reference_full
 
     ns = _run("README.md")
-    want = reduce_mode(reference_full(ns["net"], ns["x"][:6]), "trace")
+    net = ns["net"].replace(params=f64(ns["net"].params))  # the README's model is float32
+    want = reduce_mode(reference_full(net, np.float64(ns["x"][:6])), "trace")
     got = np.asarray(ns["k"])[:6, :6]
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-10 * np.abs(want).max())
     assert ns["k"].kind == "trace" and ns["k"].num_outputs == 10
