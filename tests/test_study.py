@@ -16,6 +16,8 @@ Every number of the report is checked against an independent computation:
 - the test error of kernel ridge against scikit-learn's ``KernelRidge(kernel="precomputed")``;
 - the interpolation check against ``numpy.linalg.matrix_rank`` of ``[tanh(xW + b), 1]``;
 - each parameter group's kernel against `ntkcalc.ntk` restricted to that group's parameters.
+
+An nnx model saved with orbax and loaded through a factory is checked on scikit-learn's iris.
 """
 
 from __future__ import annotations
@@ -234,9 +236,10 @@ def test_report_files_and_plot(run):
     result, report, html_path, *_ = run
     with open(html_path, encoding="utf-8") as fh:
         text = fh.read()
-    # overview, drift, two forecasts against the run, two risk curves
-    assert text.count("data:image/png;base64,") == 6 and result.verdict.split(":")[0] in text
+    # overview, drift, heat maps, two forecasts against the run, two risk curves
+    assert text.count("data:image/png;base64,") == 7 and result.verdict.split(":")[0] in text
     assert json.loads(result.to_json()) == report
+    assert report["labels"] == result.labels.tolist() and len(report["labels"]) == N_TRAIN
     assert len(result.plot().axes) == 4
 
 

@@ -177,6 +177,7 @@ class RunAnalysis(Result):
         steps: (T,) the checkpoints' training steps.
         num_train, num_test: examples in the training and test sets (num_test 0 without one).
         num_outputs: O, the model's outputs.
+        labels: (N,) the training set's integer classes for classification targets, else None.
         dtype: the dtype of every kernel.
         kinds: answer → the kernel it came from (e.g. ``"drift": "trace (N, N)"``).
         drift: `Drift` over the checkpoints (trace kernels on the training set).
@@ -195,6 +196,7 @@ class RunAnalysis(Result):
     num_train: int
     num_test: int
     num_outputs: int
+    labels: np.ndarray | None
     dtype: str
     kinds: dict
     drift: Drift
@@ -211,7 +213,8 @@ class RunAnalysis(Result):
         d = self.drift
         return _plain({
             "steps": self.steps, "num_train": self.num_train, "num_test": self.num_test,
-            "num_outputs": self.num_outputs, "dtype": self.dtype, "kinds": self.kinds,
+            "num_outputs": self.num_outputs, "labels": self.labels, "dtype": self.dtype,
+            "kinds": self.kinds,
             "lazy": self.lazy, "verdict": self.verdict, "laziness": self.laziness.to_dict(),
             "drift": {"table": d.to_dict(), "threshold": d.threshold, "notes": list(d.notes)},
             "groups": [dataclasses.asdict(g) for g in self.groups],
@@ -445,7 +448,8 @@ def analyse_run(
     }
     return RunAnalysis(
         steps=step_arr, num_train=n, num_test=0 if xt is None else int(xt.shape[0]),
-        num_outputs=o, dtype=dtype, kinds=kinds, drift=dr, laziness=verdict, lazy=verdict.lazy,
+        num_outputs=o, labels=_class_labels(y_train, y), dtype=dtype, kinds=kinds, drift=dr,
+        laziness=verdict, lazy=verdict.lazy,
         verdict=verdict.sentence, groups=groups, feature_ranks=ranks, checkpoints=tuple(answers),
         cautions=tuple(dict.fromkeys(notes + cautions.items)),
     )
@@ -712,6 +716,8 @@ def _answers_numbers(a: CheckpointAnswers) -> dict:
             "observed_test_mse": a.observed_test_mse,
         },
         "spectrum": {"eigenvalues": spec.eigenvalues, "effective_rank": spec.effective_rank,
+                     "decay_exponent": spec.decay_exponent,
+                     "decay_fit_range": spec.decay_fit_range,
                      "condition_number": spec.condition_number,
                      "numerical_rank": spec.numerical_rank},
         "alignment": a.alignment,
@@ -766,6 +772,12 @@ def _html(r: RunAnalysis) -> str:
         d.steps, relative_change=d.relative_change, distance=d.distance_to_initial,
         alignment=d.alignment, threshold=d.threshold,
         spread=None if spread is None else (spread.relative_change, spread.distance))) + '">')
+    if r.labels is not None:
+        first, last = d.steps[0], d.steps[-1]
+        fig = plots.heatmap_figure({f"step {first}": d.kernels[0], f"step {last}": d.kernels[-1]},
+                                   r.labels, [str(c) for c in range(r.num_outputs)])
+        parts.append("<p>The trace kernel, examples sorted by class:</p>"
+                     f'<img src="data:image/png;base64,{_png(fig)}">')
     parts.append("<h2>Parameter groups</h2>" + _table(
         ("group", "relative change", "share of trace, first", "share of trace, last", "moved"),
         [(g.group, g.relative_change, g.share_first, g.share_last, g.moved) for g in r.groups]))
