@@ -255,3 +255,12 @@ def test_underflow_to_zero_kernel_warns():
     with pytest.warns(RuntimeWarning, match="the kernel is exactly zero"):
         k = ntkcalc.ntk(net, XN + 2.0)
     assert not np.any(k)
+
+
+def test_non_array_leaf_is_named():
+    # Before: numpy's "ufunc 'isfinite' not supported" from inside the finite check.
+    import fractions
+
+    net = ntkcalc.Net(lambda p, x: x @ p["w"], {"w": jnp.ones((4, 2)), "s": fractions.Fraction(1)})
+    with pytest.raises(TypeError, match=r"`net.params` leaf 's' is a Fraction, not an array"):
+        ntkcalc.ntk(net, X)
