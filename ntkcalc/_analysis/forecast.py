@@ -31,7 +31,7 @@ import scipy.special
 
 from .._kind import describe, kind_of
 from .._tiles.progress import bar
-from . import _checks
+from . import _checks, rank
 from ._eig import eigh_descending
 from ._result import Result
 
@@ -321,18 +321,17 @@ def _check_result_size(steps: np.ndarray, *, rows: int, n_out: int, cols: int) -
         )
 
 
-#: Eigenvalues below ``−PSD_RTOL_FACTOR · N · eps(dtype) · λ_max`` are not rounding: the matrix is
-#: not a kernel (not positive semi-definite). LAPACK's eigenvalues of a PSD matrix stored in
-#: precision eps are accurate to about N·eps·λ_max (Golub & Van Loan, "Matrix Computations",
-#: 4th ed., §8.1, Weyl's inequality); the factor 10 leaves room for the rounding of the kernel's
-#: own computation.
-PSD_RTOL_FACTOR = 10.0
-
-
 def _check_psd(lam: np.ndarray, *, dtype: str) -> None:
-    eps = np.finfo(np.dtype(dtype) if np.dtype(dtype).kind == "f" else np.float64).eps
-    tol = PSD_RTOL_FACTOR * lam.size * eps * max(float(np.max(np.abs(lam))), 0.0)
-    if lam.size and lam[-1] < -tol:
+    """Refuse a kernel with an eigenvalue below zero by more than rounding.
+
+    The yardstick is the one rank rule's: ``−rank.MARGIN · σ_max·n·ε(dtype)`` (`rank`); LAPACK's
+    eigenvalues of a PSD matrix stored in precision ε are accurate to about n·ε·λ_max (Weyl's
+    inequality; Golub & Van Loan, "Matrix Computations", 4th ed., §8.1).
+    """
+    if not lam.size:
+        return
+    tol = rank.MARGIN * rank.rounding_tolerance(float(np.max(np.abs(lam))), lam.shape, dtype)
+    if lam[-1] < -tol:
         raise ValueError(
             f"`k_train` is not positive semi-definite: its smallest eigenvalue is "
             f"{lam[-1]:.3g}, below the rounding bound −{tol:.2g} for {dtype}. A neural tangent "
