@@ -31,7 +31,6 @@ from __future__ import annotations
 import base64
 import dataclasses
 import html
-import inspect
 import json
 import os
 from collections.abc import Sequence
@@ -588,10 +587,8 @@ def _groups(first: Net, last: Net, x, *, threshold: float, options: dict) -> tup
 def _feature_rank(net: Net, x, layer, step: int, cautions: _Cautions) -> FeatureRank | None:
     """The interpolation check at one checkpoint; None, with the reason as a caution, when the
     features cannot be found."""
-    accepted = inspect.signature(feature_rank).parameters
-    opts = {} if layer is None else {"layer": layer}
-    if "ntk_gram" in accepted:
-        opts["ntk_gram"] = "none"  # the kernel's own spectrum is in the result already
+    # the NTK Gram's λ_min is left out: the kernels' spectra are in the result already
+    opts = {"ntk_gram": "none"} if layer is None else {"layer": layer, "ntk_gram": "none"}
     try:
         with cautions.watch():
             return feature_rank(net, x, **opts)
@@ -698,8 +695,8 @@ def _plain(value):
 
 def _rank_numbers(r: FeatureRank) -> dict:
     names = ("num_examples", "num_features", "rank", "full_rank", "sigma_max", "sigma_min",
-             "tol", "margin", "layer", "precision", "reliable", "verdict")
-    return {k: getattr(r, k) for k in names if hasattr(r, k)}
+             "tol", "margin", "layer", "features", "precision", "reliable", "caution", "verdict")
+    return {k: getattr(r, k) for k in names}
 
 
 def _answers_numbers(a: CheckpointAnswers) -> dict:
