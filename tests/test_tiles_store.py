@@ -525,3 +525,21 @@ def test_report_verifies_checksums(model, tmp_path):
     with pytest.raises(ValueError, match=r"`source`=.* 1 of \d+ tiles are missing or fail their "
                                          r"checksum"):
         write_report(store, out=tmp_path / "report")
+
+
+def test_filesystem_without_flock_runs_unlocked(model, tmp_path, monkeypatch, caplog):
+    # Some network filesystems refuse flock (ENOLCK): the run goes on, and says so.
+    import errno
+    import fcntl
+
+    net, x, _ = model
+
+    def no_flock(fd, op):
+        raise OSError(errno.ENOLCK, "No locks available")
+
+    monkeypatch.setattr(fcntl, "flock", no_flock)
+    with caplog.at_level("WARNING", logger="ntkcalc"):
+        view = ntkcalc.ntk(net, x, outputs="full", store=tmp_path / "k.zarr", memory=SMALL,
+                           progress=False)
+    assert "cannot be locked" in caplog.text
+    assert view.info.computed == view.info.tiles

@@ -202,16 +202,16 @@ def compute(req, *, outputs, memory, method, store, progress, devices, verify: b
         t0 = time.perf_counter()
         nonzero = False
         with bar(len(todo), enabled=progress, where=where) as b:
-            left = list(todo)
+            written = 0  # tiles come in `todo` order
             try:
                 for t, values in iter_tiles(plan, req, todo, devices=devs):
                     ts.write(t, values)
-                    left.remove(t)
+                    written += 1
                     nonzero = nonzero or bool(np.any(values))
                     b.update()
             except OSError as e:
                 if is_disk_full(e):
-                    raise disk_full(store, needed=sum(map(ts.tile_bytes, left))) from e
+                    raise disk_full(store, needed=sum(map(ts.tile_bytes, todo[written:]))) from e
                 raise
         barrier("ntkcalc-store-done")
         missing = len(all_tiles) - ts.count_done()

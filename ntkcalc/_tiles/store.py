@@ -123,6 +123,9 @@ def locked(store):
         except BlockingIOError:
             logger.warning(STORE_BUSY.format(store=describe(store)))
             fcntl.flock(fd, fcntl.LOCK_EX)
+        except OSError as e:  # a filesystem without flock (some network mounts): go on unlocked
+            logger.warning("ntkcalc: `store`=%r cannot be locked (%s): run one process per store "
+                           "path, or several under jax.distributed.", describe(store), e)
         yield
     finally:
         os.close(fd)  # releases the lock
