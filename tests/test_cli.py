@@ -214,3 +214,23 @@ def test_inputs_of_the_wrong_width_are_named(files, capsys):
                                                            "--key": None}))
     _one_line_error(code, err, status=1)
     assert "--x has the wrong feature shape" in err and "(4,)" in err
+
+
+def test_kernel_spot_check(files, capsys, monkeypatch):
+    # A wrong kernel entry (injected where tiles leave the devices) stops the run with one line.
+    from ntkcalc._tiles import drive
+
+    tmp_path, _, _ = files
+    code, _, err = _run(capsys, *_kernel_args(tmp_path), "--spot-check", "4")
+    assert code == 0, err
+    real = drive.iter_tiles
+
+    def wrong(plan, req, todo, *, devices):
+        for t, values in real(plan, req, todo, devices=devices):
+            yield t, values * 1.01
+
+    monkeypatch.setattr(drive, "iter_tiles", wrong)
+    code, _, err = _run(capsys, *_kernel_args(tmp_path, **{"--store": tmp_path / "w.zarr"}),
+                        "--spot-check", "4")
+    _one_line_error(code, err, status=1)
+    assert "`spot_check` failed" in err

@@ -85,6 +85,9 @@ def build_parser() -> argparse.ArgumentParser:
     kernel.add_argument("--params", metavar="REGEX", help="only parameters whose dotted name "
                                                           "matches")
     kernel.add_argument("--memory", help="peak-memory budget, e.g. 4GB")
+    kernel.add_argument("--spot-check", type=int, default=0, metavar="K",
+                        help="recompute K kernel entries independently with jax.jacrev and "
+                             "stop if one disagrees (default 0: off)")
     kernel.add_argument("--x64", action="store_true", help="compute in float64")
     kernel.add_argument("--quiet", action="store_true", help="no progress messages")
 
@@ -180,8 +183,8 @@ def _kernel(args) -> int:
                         f"first example of --x, of feature shape {x.shape[1:]}: if the checkpoint "
                         "is the right one, --x has the wrong feature shape for it.)") from err
     accepted = inspect.signature(ntk).parameters
-    extra = {k: v for k, v in (("store", args.store), ("progress", not args.quiet))
-             if k in accepted}
+    extra = {k: v for k, v in (("store", args.store), ("progress", not args.quiet),
+                               ("spot_check", args.spot_check)) if k in accepted}
     n2 = len(x) if x2 is None else len(x2)
     _say(args.quiet, f"kernel {len(x)} x {n2}, outputs {args.outputs}, method {args.method}, "
                      f"{net.num_params:,} parameters")
@@ -246,9 +249,10 @@ def main(argv: list[str] | None = None) -> int:
     except UsageError as err:
         print(err, file=sys.stderr)
         return 2
-    except (ValueError, TypeError, MemoryError, ArithmeticError, OSError) as err:
+    except (ValueError, TypeError, MemoryError, ArithmeticError, OSError, RuntimeError) as err:
         # The library's messages say what to do; OSError covers a full disk, a path that is a
-        # file or not writable (PermissionError, FileExistsError, FileNotFoundError).
+        # file or not writable (PermissionError, FileExistsError, FileNotFoundError);
+        # RuntimeError a failed spot check, an incomplete multi-process store, a device error.
         text = str(err)
         if isinstance(err, OSError) and err.strerror:
             text = err.strerror if err.filename is None else (
