@@ -162,10 +162,13 @@ def test_mean_over_seeds_converges_to_exact():
             assert abs(est[i, j] - want[i, j]) <= 5 * np.sqrt(var)
 
 
-@pytest.mark.parametrize("case", ZOO, ids=lambda c: c.name)
+@pytest.mark.parametrize("case", [c for c in ZOO if c.name not in ("mlp", "resblock-linen")],
+                         ids=lambda c: c.name)
 def test_every_representation_is_unbiased(case):
-    """Every model of the zoo (conv, embedding, attention, batch-norm state, shared weights:
-    factored, dense and fallback leaves): the mean of k features' estimates matches Θ."""
+    """Every kind of leaf in the zoo (conv, embedding, attention's batched dot-generals, batch-norm
+    state and scales, a weight used twice: factored, dense and fallback leaves; the MLP is covered
+    by the variance tests, the linen residual block by the nnx one): the mean of k features'
+    estimates matches Θ."""
     net = case.make()
     x = case.x(np.random.default_rng(1), 2)
     f = ntkcalc.ntk_features(net, x, k=3000, seed=5, progress=False)

@@ -59,6 +59,12 @@ class Uncertain(Result):
     bias: float | np.ndarray
     groups: int
 
+    @property
+    def corrected(self) -> float | np.ndarray:
+        """``value − bias``: the jackknife's first-order bias correction (Quenouille 1956). For
+        top eigenvalues, which a sketch pushes up by about tr K / k, prefer this."""
+        return self.value - self.bias
+
     def __float__(self) -> float:
         return float(self.value)
 

@@ -11,7 +11,9 @@ architecture (seed 7) on the same inputs; targets are their one-hot rows.
   features at each k: top-10 eigenvalues (relative error), kernel-ridge test MSE (absolute
   difference), centered alignment (difference in units of its jackknife error bar);
 - scale: N examples streamed from a .npy memmap into a features store, seconds per 100,000
-  examples and peak RSS of the process, the 1,000,000-example time extrapolated linearly.
+  examples (wall, and CPU seconds of the process with the load average around it: on a shared
+  machine wall time measures the neighbours too) and peak RSS of the process, the
+  1,000,000-example time extrapolated linearly.
 """
 
 from __future__ import annotations
@@ -54,9 +56,12 @@ def _accuracy(spec: dict) -> list[dict]:
     ktr = k[tr, tr]
     m = ktr.shape[0]
     eig = scipy.linalg.eigh(k, eigvals_only=True, subset_by_index=(n - TOP, n - 1))[::-1]
-    ridge = spec.get("ridge_scale", 1e-2) * float(np.trace(ktr)) / m
-    fit = ntkcalc.ridge_fit(ktr, y[tr], ridge=ridge, k_test_train=k[te, tr])
-    test_mse = float(np.mean((fit.test_predictions - y[te]) ** 2))
+    scale = float(np.trace(ktr)) / m
+    ridges = [c * scale for c in spec.get("ridge_scales", (1e-2, 1e-1, 1.0))]
+    test_mse = []
+    for r in ridges:
+        fit = ntkcalc.ridge_fit(ktr, y[tr], ridge=r, k_test_train=k[te, tr])
+        test_mse.append(float(np.mean((fit.test_predictions - y[te]) ** 2)))
     align = ntkcalc.alignment(ktr, y[tr])
     rows = []
     for kk in spec["ks"]:
@@ -66,19 +71,23 @@ def _accuracy(spec: dict) -> list[dict]:
         phi = np.asarray(f.features)
         t0 = time.perf_counter()
         spec_f, _ = ntkcalc.features_spectrum(phi, top=TOP)
-        rf = ntkcalc.features_ridge(phi[tr], y[tr], ridge=ridge, test_features=phi[te],
-                                    y_test=y[te])
+        fits = [ntkcalc.features_ridge(phi[tr], y[tr], ridge=r, test_features=phi[te],
+                                       y_test=y[te]) for r in ridges]
         af = ntkcalc.features_alignment(phi[tr], y[tr])
         analysis_s = time.perf_counter() - t0
         rel = np.abs(spec_f.value - eig) / eig
+        rel_c = np.abs(spec_f.corrected - eig) / eig
         rows.append({
             "kind": "accuracy", "N": n, "k": kk, "exact_s": exact_s, "features_s": feat_s,
-            "analysis_s": analysis_s,
+            "analysis_s": analysis_s, "trace_over_top": float(np.trace(k) / eig[0]),
             "eig_rel_err_max": float(rel.max()), "eig_rel_err_top1": float(rel[0]),
+            "eig_corrected_rel_err_max": float(rel_c.max()),
             "eig_rel_err_bar_max": float(np.max(spec_f.error / eig)),
-            "eig_rel_bias_max": float(np.max(np.abs(spec_f.bias) / eig)),
-            "test_mse_exact": test_mse, "test_mse_features": rf.test_mse.value,
-            "test_mse_error_bar": rf.test_mse.error,
+            "ridge_over_mean_diag": list(spec.get("ridge_scales", (1e-2, 1e-1, 1.0))),
+            "test_mse_exact": test_mse,
+            "test_mse_features": [ft.test_mse.value for ft in fits],
+            "test_mse_features_corrected": [ft.test_mse.corrected for ft in fits],
+            "test_mse_error_bar": [ft.test_mse.error for ft in fits],
             "alignment_exact": align, "alignment_features": af.value,
             "alignment_error_bar": af.error,
             "alignment_z": abs(af.value - align) / af.error,
@@ -107,16 +116,28 @@ def _scale(spec: dict) -> list[dict]:
         del mm
         x = np.load(path, mmap_mode="r")
         load0 = os.getloadavg()[0]
+        cpu0 = _cpu_seconds()
         t0 = time.perf_counter()
         f = ntkcalc.ntk_features(net, x, k=k, store=os.path.join(tmp, "f.zarr"),
                                  memory=spec.get("memory", "4GB"), progress=False)
         wall = time.perf_counter() - t0
+        cpu = _cpu_seconds() - cpu0
         rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6
     per = f.seconds / n * 1e5
     return [{"kind": "scale", "N": n, "k": k, "block": f.block, "seconds": wall,
              "blocks_s": f.seconds, "s_per_100k": per, "extrapolated_1M_s": 10 * per,
+             "cpu_s": cpu, "cpu_s_per_100k": cpu / n * 1e5, "cores": os.cpu_count(),
              "peak_rss_gb": rss, "memory": spec.get("memory", "4GB"),
              "load_avg_start": load0, "load_avg_end": os.getloadavg()[0]}]
+
+
+def _cpu_seconds() -> float:
+    """User + system CPU seconds of this process (all threads): on a shared machine the wall
+    time depends on the neighbours' load, the CPU time much less."""
+    import resource
+
+    r = resource.getrusage(resource.RUSAGE_SELF)
+    return r.ru_utime + r.ru_stime
 
 
 def _child(spec: dict) -> list[dict]:
