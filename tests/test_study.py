@@ -159,7 +159,7 @@ def test_verdict_gap_is_the_run_against_linearized_training_from_init(run):
                                                                          abs=1e-12)
 
 
-def _linearized_sgd(net, x, y, steps):
+def _linearized_sgd(net, x, y, steps, *, loss=_mse_loss):
     """optax SGD on ``f_lin(θ) = f(θ_t) + J_t (θ − θ_t)`` (jax.jvp around the Net's params)."""
     theta_t = net.params
 
@@ -168,7 +168,7 @@ def _linearized_sgd(net, x, y, steps):
         f, df = jax.jvp(lambda q: net.apply(q, inputs), (theta_t,), (delta,))
         return f + df
 
-    kept = _sgd(lambda p: _mse_loss(f_lin(p, x), y), theta_t, steps)
+    kept = _sgd(lambda p: loss(f_lin(p, x), y), theta_t, steps)
     return lambda t, inputs: np.asarray(f_lin(kept[t], inputs))
 
 
@@ -322,3 +322,18 @@ def test_nnx_checkpoints_from_a_factory(tmp_path):
         want = reduce_mode(reference_full(hand[s], x), "trace")
         assert_close(result.drift.kernels[i], want, rtol=1e-10)
     assert {g.group for g in result.groups} == {"hidden", "readout"}
+
+    # cross-entropy forecasts, compared with the run: the gap by `Forecast.departure`'s scale for
+    # cross-entropy, max_t ‖f_lin(t) − f_0‖, against optax SGD on the jvp-linearized model with
+    # optax's softmax cross-entropy (mean over examples, the forecast's convention)
+    y = np.eye(3)[labels]
+    ce = lambda f, t: jnp.mean(optax.softmax_cross_entropy(f, t))
+    result = analyse_run([(0, hand[0]), (2, hand[2])], x, labels, lr=LR, loss="cross-entropy",
+                         full_batch_gd=True, forecast_from=[0], horizon=2)
+    (start,) = result.checkpoints
+    lin = _linearized_sgd(hand[0], x, y, 2, loss=ce)
+    assert_close(start.forecast.train_outputs[-1], lin(2, x), rtol=1e-9)
+    scale = max(np.linalg.norm(lin(t, x) - lin(0, x)) for t in (0, 1, 2))
+    want = np.linalg.norm(np.asarray(hand[2](x)) - lin(2, x)) / scale
+    assert start.gap_steps.tolist() == [0, 2] and start.gap[-1] == pytest.approx(want, rel=1e-8)
+    assert result.laziness.forecast_gap == pytest.approx(want, rel=1e-8)

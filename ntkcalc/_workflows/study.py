@@ -597,6 +597,17 @@ def _feature_rank(net: Net, x, layer, step: int, cautions: _Cautions) -> Feature
         return None
 
 
+def _gap_scale(path: np.ndarray, y: np.ndarray, *, loss: str) -> float:
+    """The scale of the forecast gap, as `Forecast.departure` defines it: the initial residual
+    ``‖f_0 − y‖_F`` for mse; for cross-entropy, whose one-hot targets lie at infinite logits,
+    how far the forecast moves the outputs, ``max_t ‖f_lin(t) − f_0‖_F``."""
+    if loss == "mse":
+        return float(np.linalg.norm(path[0] - y))
+    with np.errstate(invalid="ignore", over="ignore"):
+        moved = np.sqrt(np.sum((path - path[:1]).reshape(len(path), -1) ** 2, axis=1))
+    return float(np.max(moved[np.isfinite(moved)], initial=0.0))
+
+
 def _mse(f, y) -> np.ndarray:
     """The one error convention: mean over examples and outputs of ``(f − y)²`` (per leading
     index for stacked outputs)."""
@@ -640,13 +651,14 @@ def _answers(net, step, x, y, xt, yt, labels_t, *, kernel, f, ft, lr, loss, hori
         if keep is not None and np.any(keep):
             gap_steps, seen = record[0][keep], record[1][keep]
             at = np.searchsorted(fc.steps, gap_steps - step)
-            gap = output_gap(seen, fc.train_outputs[at], scale=float(np.linalg.norm(f - y)),
+            gap = output_gap(seen, fc.train_outputs[at],
+                             scale=_gap_scale(fc.train_outputs, y, loss=loss),
                              steps=gap_steps, observed_name="recorded_train")
             if record[2] is not None:
                 seen_test = record[2][keep]
                 test_gap = output_gap(seen_test, fc.test_outputs[at],
-                                      scale=float(np.linalg.norm(ft - yt)), steps=gap_steps,
-                                      observed_name="recorded_test")
+                                      scale=_gap_scale(fc.test_outputs, yt, loss=loss),
+                                      steps=gap_steps, observed_name="recorded_test")
     elif xt is not None:
         kx = np.asarray(ntk(net, xt, x, outputs="trace", **options))
     spec = spectrum(kernel, num_examples=n)
@@ -705,7 +717,8 @@ def _answers_numbers(a: CheckpointAnswers) -> dict:
     return {
         "step": a.step, "kernel": a.kernel, "kernel_dtype": a.kernel_dtype,
         "forecast": None if fc is None else {
-            "steps_after": fc.steps, "lr": fc.lr, "loss": fc.loss, "train_mse": a.train_mse,
+            "steps_after": fc.steps, "lr": fc.lr, "loss": fc.loss, "train_loss": fc.train_loss,
+            "test_loss": fc.test_loss, "train_mse": a.train_mse,
             "test_mse": a.test_mse, "train_accuracy": fc.train_accuracy,
             "test_accuracy": fc.test_accuracy, "max_stable_lr": fc.max_stable_lr,
             "stable": fc.stable,
