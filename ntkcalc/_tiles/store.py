@@ -179,6 +179,8 @@ def inspect(store) -> Found:
         return Found(None)
     except zarr.errors.NodeTypeValidationError:
         raise ValueError(NOT_A_STORE.format(store=where)) from None
+    except OSError:
+        raise  # the location cannot be read (permissions, network): not a damaged store
     except Exception as e:  # noqa: BLE001 - zarr.json that does not parse or validate
         if _tile_arrays_present(store):
             return Found(None, f"its group metadata ({where}/zarr.json) cannot be read "
