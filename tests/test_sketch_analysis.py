@@ -73,7 +73,9 @@ def test_primal_ridge_equals_kernel_ridge_on_sketched_kernel():
     phi, y = random_features()
     tr, te = slice(0, 120), slice(120, None)
     r = 0.7
-    fit = ntkcalc.features_ridge(phi[tr], y[tr], ridge=r, test_features=phi[te], y_test=y[te])
+    with pytest.warns(RuntimeWarning, match="tr K̂ / k"):  # N = 120 > k = 48, small ridge
+        fit = ntkcalc.features_ridge(phi[tr], y[tr], ridge=r, test_features=phi[te],
+                                     y_test=y[te])
     k = phi @ phi.T
     ref = KernelRidge(alpha=r, kernel="precomputed").fit(k[tr, tr], y[tr])
     np.testing.assert_allclose(fit.train_predictions, ref.predict(k[tr, tr]), atol=1e-9)
@@ -157,6 +159,8 @@ def test_argument_errors():
         ntkcalc.features_alignment(phi, y, groups=1)
     with pytest.raises(ValueError, match="`ridge`"):
         ntkcalc.features_ridge(phi, y, ridge=0.0)
+    assert np.trace(phi.T @ phi) / phi.shape[1] < 1e4  # a ridge above tr K̂ / k: no warning
+    ntkcalc.features_ridge(phi, y, ridge=1e4)
     with pytest.raises(ValueError, match="`top`=60"):
         ntkcalc.features_spectrum(phi, top=60)
     with pytest.raises(TypeError, match="`features1`"):

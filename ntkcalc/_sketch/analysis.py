@@ -161,9 +161,9 @@ def features_spectrum(features, *, top: int = 10, groups: int = GROUPS,
         vectors: also return the top eigenvectors (N, top) of K̂, ``φ V Λ^{-1/2}``.
 
     Returns:
-        (`Uncertain` with (top,) arrays, eigenvectors or None). The small eigenvalues of a sketch
-        are pushed up by the sketch noise (about ``tr K / k``); the jackknife ``bias`` estimates
-        that push to first order.
+        (`Uncertain` with (top,) arrays, eigenvectors or None). With N > k every eigenvalue of a
+        sketch is pushed up by about ``(tr K − λ) / k``; the jackknife ``bias`` estimates that
+        push to first order: read ``.corrected`` (docs/sketch.md has measurements).
     """
     phi = _array("features", features)
     top = _checks.positive_int("top", top)
@@ -227,7 +227,8 @@ def features_ridge(features, y, *, ridge: float, test_features=None, y_test=None
         groups: jackknife groups of features.
 
     Warns:
-        RuntimeWarning when ``G + r I`` has condition number above 1e12.
+        RuntimeWarning when ``G + r I`` has condition number above 1e12, and when N > k and
+        ``r < tr K̂ / k``: there the sketch's bias (not shown by the error bars) dominates.
     """
     phi = _array("features", features)
     n, k = phi.shape
@@ -246,6 +247,14 @@ def features_ridge(features, y, *, ridge: float, test_features=None, y_test=None
                              kshape=test.shape)
         gt, _, (pyt,), _ = _moments(test, (yt,))
         yyt = float(np.sum(yt * yt))
+    noise = float(np.trace(g)) / k
+    if n > k and r < noise:
+        warnings.warn(
+            f"`ridge`={r:.4g} is below tr K̂ / k = {noise:.4g} with more examples ({n}) than "
+            f"features ({k}): the sketch's noise in the small-eigenvalue directions biases this "
+            "fit beyond its error bars (measured: test MSE off by 0.1 at a hundredth of the mean "
+            "diagonal, docs/performance.md). Raise `ridge` or k.",
+            RuntimeWarning, stacklevel=2)
     top = scipy.linalg.eigh(g, eigvals_only=True, subset_by_index=(k - 1, k - 1),
                             check_finite=False)[0]
     _checks.warn_if_ill_conditioned(float((max(top, 0) + r) / r),
