@@ -7,6 +7,7 @@ primitive (Novak, Sohl-Dickstein & Schoenholz, ICML 2022, arXiv:2206.08720), or 
 
 from __future__ import annotations
 
+import equinox as eqx
 import flax.linen as nn
 import jax
 import jax.numpy as jnp
@@ -48,8 +49,8 @@ class Encoder(nn.Module):
 
 
 def transposed_apply(p, x):
-    """A parameter used transposed, one broadcast before use, one used nonlinearly, one in a
-    scan (control flow): the last two must fall back."""
+    """A parameter used transposed, one broadcast before use, one used nonlinearly (must fall
+    back), one closed over by a scan (a sum over steps, like the positions of a conv)."""
     h = jnp.tanh(x @ p["w_t"].T)  # stored (out, in)
     h = h * jnp.broadcast_to(p["gain"], h.shape)  # broadcast chain
     h = h * jnp.exp(p["log_scale"])[None]  # nonlinear use
@@ -88,6 +89,86 @@ def _lookup_net():
     return ntkcalc.Net(lookup_apply, params)
 
 
+def linear_uses_apply(p, x):
+    """Linear uses: a weight inside jax.checkpoint, ``h - shift``, a class token concatenated
+    before the sequence, a sliced position table (``wpe[:T]``), a negated weight; and a
+    parameter passed into a custom_jvp function (jax.nn.relu), which must fall back."""
+    h = jax.checkpoint(lambda w, x: jnp.tanh(x @ w))(p["w"], x)
+    h = jnp.tanh(h - p["shift"][None]) * jax.nn.relu(p["gate"])[None]
+    cls = jnp.broadcast_to(p["cls"], (h.shape[0], 1, 3))
+    seq = jnp.concatenate([cls, h.reshape(h.shape[0], 2, 3)], axis=1)  # (batch, 3, 3)
+    seq = jnp.tanh(seq + p["wpe"][None, :3])
+    return seq.reshape(h.shape[0], -1) @ -p["v"]
+
+
+def _linear_uses_net():
+    r = np.random.default_rng(3)
+    params = {"w": r.normal(size=(5, 6)), "shift": r.normal(size=(6,)),
+              "gate": r.normal(size=(6,)), "cls": r.normal(size=(3,)),
+              "wpe": r.normal(size=(5, 3)), "v": r.normal(size=(9, 2))}
+    return ntkcalc.Net(linear_uses_apply, params)
+
+
+class Upsample(nn.Module):
+    """nn.remat around a layer, ConvTranspose with transpose_kernel=True (the kernel flipped by
+    `rev`), jnp.flip of activations and custom_jvp activations (relu, gelu)."""
+
+    @nn.compact
+    def __call__(self, x):
+        x = nn.gelu(nn.remat(nn.Dense)(2)(x))
+        x = nn.relu(nn.ConvTranspose(3, (3, 3), transpose_kernel=True)(x))
+        return nn.Dense(2)(jnp.flip(x, 1).reshape(x.shape[0], -1))
+
+
+class ScanBlock(nn.Module):
+    @nn.compact
+    def __call__(self, h, _):
+        return h + nn.Dense(4)(nn.tanh(nn.LayerNorm()(nn.Dense(4)(h)))), None
+
+
+class LayerScan(nn.Module):
+    """Three residual blocks as one nn.scan over layers (stacked per-layer weights)."""
+
+    @nn.compact
+    def __call__(self, x):
+        blocks = nn.scan(ScanBlock, variable_axes={"params": 0}, split_rngs={"params": True},
+                         length=3)
+        h, _ = blocks()(x, None)
+        return nn.Dense(2)(h)
+
+
+class Recurrent(nn.Module):
+    """An LSTM and a GRU over the sequence (nn.RNN: the cells' weights at every step)."""
+
+    @nn.compact
+    def __call__(self, x):
+        h = nn.RNN(nn.LSTMCell(3, param_dtype=jnp.float64))(x)
+        h = nn.RNN(nn.GRUCell(2, param_dtype=jnp.float64))(h)
+        return nn.Dense(2, param_dtype=jnp.float64)(h[:, -1])
+
+
+class TokenMLP(eqx.Module):
+    """equinox: Embedding vmapped over tokens (its row gather) and MLP(scan=True)."""
+
+    emb: eqx.nn.Embedding
+    mlp: eqx.nn.MLP
+
+    def __init__(self, key):
+        k1, k2 = jax.random.split(key)
+        self.emb = eqx.nn.Embedding(7, 3, key=k1)
+        self.mlp = eqx.nn.MLP(3, 2, 4, 3, scan=True, key=k2)
+
+    def __call__(self, tokens):
+        return self.mlp(jax.vmap(self.emb)(tokens).mean(0))
+
+
+def _equinox_net():
+    model = jax.tree_util.tree_map(
+        lambda a: a.astype(np.float64) if eqx.is_inexact_array(a) else a,
+        TokenMLP(jax.random.key(2)))
+    return ntkcalc.Net.from_equinox(model)
+
+
 def _linen(module, x):
     return ntkcalc.Net.from_linen(module, f64(module.init(jax.random.key(0), x[:1])))
 
@@ -98,7 +179,13 @@ def models():
     x_img = r.normal(size=(4, 9, 8, 4))
     tokens = r.integers(0, 13, size=(4, 5)).astype(np.int32)
     x_vec = r.normal(size=(4, 4))
+    x_seq = r.normal(size=(4, 5, 2))
     return {
+        "linear-uses": (_linear_uses_net(), r.normal(size=(4, 5))),
+        "upsample": (_linen(Upsample(), x_img[:, :4, :4]), x_img[:, :4, :4]),
+        "layer-scan": (_linen(LayerScan(), x_vec), x_vec),
+        "recurrent": (_linen(Recurrent(), x_seq), x_seq),
+        "equinox": (_equinox_net(), r.integers(0, 7, size=(4, 5)).astype(np.int32)),
         "convs": (_linen(Convs(), x_img), x_img),
         "encoder": (_linen(Encoder(), tokens), tokens),
         "transposed": (_transposed_net(), x_vec),
@@ -124,9 +211,36 @@ EXPECTED = {
         "Dense_2.kernel": "dense", "Dense_2.bias": "bias",
     },
     "transposed": {
-        "w_t": "dense", "gain": "scale", "log_scale": "fallback", "w_rec": "fallback",
+        "w_t": "dense", "gain": "scale", "log_scale": "fallback", "w_rec": "dense",
         "v": "dense",
     },
+    "linear-uses": {"w": "dense", "shift": "bias", "gate": "fallback", "cls": "concat",
+                    "wpe": "bias", "v": "dense"},
+    "upsample": {
+        "CheckpointDense_0.kernel": "dense", "CheckpointDense_0.bias": "bias",
+        "ConvTranspose_0.kernel": "conv", "ConvTranspose_0.bias": "bias",
+        "Dense_0.kernel": "dense", "Dense_0.bias": "bias",
+    },
+    "layer-scan": {
+        **{f"ScanScanBlock_0.Dense_{i}.{n}": r for i in (0, 1)
+           for n, r in (("kernel", "dense"), ("bias", "bias"))},
+        "ScanScanBlock_0.LayerNorm_0.scale": "scale",
+        "ScanScanBlock_0.LayerNorm_0.bias": "bias",
+        "Dense_0.kernel": "dense", "Dense_0.bias": "bias",
+    },
+    "recurrent": {
+        **{f"LSTMCell_0.i{g}.kernel": "dense" for g in "ifgo"},
+        **{f"LSTMCell_0.h{g}.{n}": r for g in "ifgo"
+           for n, r in (("kernel", "dense"), ("bias", "bias"))},
+        **{f"GRUCell_0.i{g}.{n}": r for g in "rzn"
+           for n, r in (("kernel", "dense"), ("bias", "bias"))},
+        **{f"GRUCell_0.h{g}.kernel": "dense" for g in "rzn"},
+        "GRUCell_0.hn.bias": "bias",
+        "Dense_0.kernel": "dense", "Dense_0.bias": "bias",
+    },
+    "equinox": {"emb.weight": "embed",
+                **{f"mlp.layers.{i}.{n}": r for i in range(3)
+                   for n, r in (("weight", "dense"), ("bias", "bias"))}},
     # A table used by a lookup and a matmul has two uses: structured (dense from the consumers),
     # not factored; the lookup inside tanh is still a rule (tanh consumes the gathered rows).
     "lookup": {"table": "embed", "clipped": "embed", "tied": "dense+embed×2"},
@@ -207,7 +321,7 @@ def _forced(net, x1, x2, outputs, representation):
 
 @pytest.mark.parametrize("outputs", ["full", "trace", "diagonal"])
 @pytest.mark.parametrize("representation", ["factored", "dense", "streamed"])
-@pytest.mark.parametrize("name", ["convs", "encoder", "lookup"])
+@pytest.mark.parametrize("name", ["convs", "encoder", "lookup", "layer-scan", "recurrent"])
 def test_every_representation_matches_reference(models, monkeypatch, name, representation,
                                                 outputs):
     # Dense derivatives from factors, factored Grams, and dense contractions streamed in chunks

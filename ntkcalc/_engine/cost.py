@@ -26,15 +26,16 @@ def forward_cost(closed) -> tuple[float, float]:
     flops = 0.0
     acts = 0.0
 
-    def walk(jaxpr):
+    def walk(jaxpr, times):  # times: how often each equation runs (scan steps)
         nonlocal flops, acts
         for eqn in jaxpr.eqns:
             name = eqn.primitive.name
-            sub = _sub_jaxpr(eqn) if name in CALLS else None
+            sub = _sub_jaxpr(eqn) if name in CALLS or name == "scan" else None
             if sub is not None:
-                walk(sub.jaxpr)
+                walk(sub.jaxpr, times * (eqn.params["length"] if name == "scan" else 1))
                 continue
-            out = sum(math.prod(v.aval.shape) for v in eqn.outvars if hasattr(v.aval, "shape"))
+            out = times * sum(
+                math.prod(v.aval.shape) for v in eqn.outvars if hasattr(v.aval, "shape"))
             acts += out
             if name == "dot_general":
                 (lc, _), _ = eqn.params["dimension_numbers"]
@@ -47,7 +48,7 @@ def forward_cost(closed) -> tuple[float, float]:
             else:
                 flops += out
 
-    walk(closed.jaxpr)
+    walk(closed.jaxpr, 1)
     return flops, acts
 
 

@@ -504,8 +504,9 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
 
 
 def _use_local_flops(u: st.Use) -> float:
-    """FLOPs of one consumer's VJP with respect to its parameter operand (per direction)."""
-    out = math.prod(u.out_aval.shape)
+    """FLOPs of one consumer's VJP with respect to its parameter operand (per direction), over
+    every step of its enclosing scans."""
+    out = math.prod(u.out_aval.shape) * u.repeats
     if u.rule == "dense":
         (lc, rc), _ = u.params["dimension_numbers"]
         shape = u.in_avals[u.operand].shape

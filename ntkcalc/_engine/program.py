@@ -101,7 +101,7 @@ class Program:
             out, caps = st.eval_with_probes(an, args, probes)
             return out, caps
 
-        probes0 = {u.path: jnp.zeros(u.out_aval.shape, u.out_aval.dtype) for u in uses}
+        probes0 = {u.path: jnp.zeros(st.probe_shape(u), u.out_aval.dtype) for u in uses}
         fb0 = [diff[k] for k in fb_pos]
         out, vjp, caps = jax.vjp(run, fb0, probes0, has_aux=True)
         fb_jac, cots = jax.vmap(vjp)(self.basis(out.dtype))

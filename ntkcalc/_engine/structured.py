@@ -37,14 +37,19 @@ from .contract import HIGHEST
 
 PASS_THROUGH = frozenset(
     {"reshape", "transpose", "convert_element_type", "squeeze", "expand_dims",
-     "broadcast_in_dim", "copy", "copy_p"}
+     "broadcast_in_dim", "copy", "copy_p", "rev", "neg", "slice"}
 )
-# Pass-throughs that only permute or relabel entries: inner products survive them.
-PERMUTING = PASS_THROUGH - {"broadcast_in_dim"}
+# Pass-throughs that permute, relabel or negate entries: inner products survive them.
+PERMUTING = PASS_THROUGH - {"broadcast_in_dim", "slice"}
 RULES = {"dot_general": "dense", "conv_general_dilated": "conv", "mul": "scale", "add": "bias",
-         "gather": "embed"}
+         "sub": "bias", "gather": "embed", "concatenate": "concat"}
 FACTORABLE = frozenset({"dense", "conv", "embed"})
-CALLS = frozenset({"jit", "pjit", "closed_call"})
+# Calls whose body is evaluated as written: jit, and rematerialization (jax.checkpoint,
+# nn.remat, nnx.remat), which only changes what is stored for the backward pass.
+CALLS = frozenset({"jit", "pjit", "closed_call", "remat2", "checkpoint"})
+# Custom derivative rules: their body need not be their derivative (a straight-through
+# estimator is not), so a parameter passed into one falls back to the exact Jacobian.
+CUSTOM = ("custom_jvp_call", "custom_vjp_call")
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
@@ -62,10 +67,23 @@ class Use:
     out_aval: object
     in_vars: tuple = ()  # the jaxpr variables of the operands and the output
     out_var: object = None
+    # Enclosing scans, outermost first: (length, "sum") where the leaf is a loop constant (the
+    # same weight at every step), (length, "slice") where the scan slices a stacked leaf (one
+    # layer per step). Operands and cotangents carry one leading axis per scan.
+    scans: tuple[tuple[int, str], ...] = ()
 
     @property
     def permuting(self) -> bool:
         return all(p.name in PERMUTING for p, _ in self.chain)
+
+    @property
+    def steps(self) -> tuple[int, ...]:
+        return tuple(n for n, _ in self.scans)
+
+    @property
+    def repeats(self) -> int:
+        """How many times the consumer runs per example (the product of the scan lengths)."""
+        return math.prod(self.steps)
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
@@ -99,17 +117,33 @@ def _has_rule(eqn, operand: int) -> bool:
 
 
 def _row_gather(params, operand, indices) -> bool:
-    """Whether a gather picks whole rows ``operand[idx]`` (an embedding lookup, ``jnp.take``)."""
+    """Whether a gather picks whole rows ``operand[idx]`` (an embedding lookup, ``jnp.take``).
+
+    Also the form ``operand[idx, 0:D]`` (equinox's ``Embedding`` under vmap): a start index on a
+    dimension sliced whole is clipped to 0, so only the row index matters.
+    """
     dn = params["dimension_numbers"]
     rest = tuple(operand.shape[1:])
-    out_nd = indices.ndim - 1 + len(rest)
+    dims = tuple(dn.start_index_map)
+    collapsed = tuple(dn.collapsed_slice_dims)
+    out_nd = indices.ndim - 1 + operand.ndim - len(collapsed)
     return (
-        indices.ndim >= 1 and indices.shape[-1] == 1
-        and tuple(dn.collapsed_slice_dims) == (0,) and tuple(dn.start_index_map) == (0,)
+        indices.ndim >= 1 and 0 in dims and indices.shape[-1] == len(dims)
+        and (len(dims) == 1 or params["mode"] == lax.GatherScatterMode.CLIP)
+        and collapsed in ((0,), ())
         and tuple(dn.operand_batching_dims) == () and tuple(dn.start_indices_batching_dims) == ()
         and tuple(params["slice_sizes"]) == (1, *rest)
         and tuple(dn.offset_dims) == tuple(range(indices.ndim - 1, out_nd))
     )
+
+
+def _scan_operand(params, pos: int) -> str | None:
+    """How a scan uses its operand ``pos``: "sum" for a loop constant, "slice" for a scanned
+    input (one slice per step), None for a carry."""
+    nc, nk = params["num_consts"], params["num_carry"]
+    if pos < nc:
+        return "sum"
+    return None if pos < nc + nk else "slice"
 
 
 def _sub_jaxpr(eqn):
@@ -135,7 +169,7 @@ def analyze(closed, num_diff: int) -> Analysis:
             fallback[leaf] = why
 
     def walk(jaxpr, derived: dict, prefix: tuple[int, ...]):
-        # derived: var -> (leaf, chain)
+        # derived: var -> (leaf, chain, enclosing scans)
         for i, eqn in enumerate(jaxpr.eqns):
             ins = [derived.get(v) if isinstance(v, jcore.Var) else None for v in eqn.invars]
             hits = [(k, d) for k, d in enumerate(ins) if d is not None]
@@ -144,28 +178,36 @@ def analyze(closed, num_diff: int) -> Analysis:
             name = eqn.primitive.name
             leaves = {d[0] for _, d in hits}
             if name in PASS_THROUGH and len(hits) == 1 and hits[0][0] == 0:
-                leaf, chain = hits[0][1]
-                derived[eqn.outvars[0]] = (leaf, chain + ((eqn.primitive, dict(eqn.params)),))
+                leaf, chain, scans = hits[0][1]
+                derived[eqn.outvars[0]] = (
+                    leaf, chain + ((eqn.primitive, dict(eqn.params)),), scans)
                 continue
             if len(hits) == 1 and _has_rule(eqn, hits[0][0]):
-                k, (leaf, chain) = hits[0]
+                k, (leaf, chain, scans) = hits[0]
                 touched[leaf] = True
                 uses[leaf].append(
                     Use(leaf, prefix + (i,), k, chain, RULES[name], eqn.primitive,
                         dict(eqn.params), tuple(v.aval for v in eqn.invars), eqn.outvars[0].aval,
-                        tuple(eqn.invars), eqn.outvars[0])
+                        tuple(eqn.invars), eqn.outvars[0], scans)
                 )
                 continue
-            sub = _sub_jaxpr(eqn) if name in CALLS else None
+            sub = _sub_jaxpr(eqn) if name in CALLS or name == "scan" else None
             if sub is not None:
                 inner = {}
-                for v_in, d in zip(sub.jaxpr.invars, ins, strict=True):
-                    if d is not None:
-                        if d[1]:
-                            # A transformed leaf entering a call: the chain would cross it.
-                            fail(d[0], f"transformed parameter passed into `{name}`")
+                for pos, (v_in, d) in enumerate(zip(sub.jaxpr.invars, ins, strict=True)):
+                    if d is None:
+                        continue
+                    if d[1]:
+                        # A transformed leaf entering a call: the chain would cross it.
+                        fail(d[0], f"transformed parameter passed into `{name}`")
+                    elif name != "scan":
+                        inner[v_in] = d
+                    else:
+                        kind = _scan_operand(eqn.params, pos)
+                        if kind is None:
+                            fail(d[0], "parameter is a `scan` carry")
                         else:
-                            inner[v_in] = d
+                            inner[v_in] = (d[0], (), d[2] + ((eqn.params["length"], kind),))
                 walk(sub.jaxpr, inner, prefix + (i,))
                 for v_out in sub.jaxpr.outvars:
                     if isinstance(v_out, jcore.Var) and v_out in inner:
@@ -174,13 +216,17 @@ def analyze(closed, num_diff: int) -> Analysis:
             for leaf in leaves:
                 if len(hits) > 1 and name in RULES:
                     fail(leaf, f"`{name}` with the parameter in more than one operand")
+                elif name in CUSTOM:
+                    fail(leaf, f"passed into `{name}`, whose custom derivative rule need not "
+                               "be its body's derivative")
                 else:
                     fail(leaf, f"consumed by `{name}`")
         for v in jaxpr.outvars:
             if isinstance(v, jcore.Var) and v in derived:
                 fail(derived[v][0], "parameter is an output")
 
-    walk(closed.jaxpr, {v: (k, ()) for k, v in enumerate(closed.jaxpr.invars[:num_diff])}, ())
+    walk(closed.jaxpr, {v: (k, (), ()) for k, v in enumerate(closed.jaxpr.invars[:num_diff])},
+         ())
     final_uses = tuple(tuple(u) if fallback[k] is None else () for k, u in enumerate(uses))
     unused = tuple(not touched[k] for k in range(num_diff))
     return Analysis(closed, num_diff, final_uses, tuple(fallback), unused,
@@ -201,7 +247,7 @@ def _fold_biases(uses: tuple[tuple[Use, ...], ...]) -> tuple[int | None, ...]:
             by_out[(us[0].path[:-1], us[0].out_var)] = k
     bias_of: list[int | None] = [None] * len(uses)
     for k, us in enumerate(uses):
-        if len(us) != 1 or us[0].rule != "bias" or not us[0].permuting:
+        if (len(us) != 1 or us[0].primitive.name != "add" or not us[0].permuting):
             continue
         u = us[0]
         other = u.in_vars[1 - u.operand]
@@ -209,7 +255,9 @@ def _fold_biases(uses: tuple[tuple[Use, ...], ...]) -> tuple[int | None, ...]:
         if w is None or bias_of[w] is not None:
             continue
         wu = uses[w][0]
-        b, t, _, r = factored_sizes(wu)
+        if wu.scans != u.scans:
+            continue
+        b, t, _, r = _step_sizes(wu)
         y = wu.out_aval.shape
         bias_shape = u.in_avals[u.operand].shape
         (lc, _), _ = wu.params["dimension_numbers"]
@@ -232,7 +280,11 @@ def bind(prim, params: dict, *args):
     return prim.bind(*args, **bp)
 
 
-def _eval(jaxpr, consts, args, probes: dict, captures: dict, prefix: tuple[int, ...]):
+def _eval(jaxpr, consts, args, probes: dict, captures: dict, prefix: tuple[int, ...],
+          skip: dict):
+    """Evaluate ``jaxpr`` adding ``probes[path]`` to the output of the equation at ``path`` and
+    recording its operands in ``captures[path]`` (None for operand ``skip[path]``, the leaf
+    itself, which is never needed)."""
     env = {}
 
     def read(v):
@@ -248,11 +300,14 @@ def _eval(jaxpr, consts, args, probes: dict, captures: dict, prefix: tuple[int, 
         invals = [read(v) for v in eqn.invars]
         if path in probes:
             out = bind(eqn.primitive, eqn.params, *invals)
-            captures[path] = invals
+            captures[path] = [None if k == skip.get(path) else v for k, v in enumerate(invals)]
             outs = [out + probes[path]]
         elif path in probed_prefixes and len(path) < max(len(p) for p in probes):
-            sub = _sub_jaxpr(eqn)
-            outs = _eval(sub.jaxpr, sub.consts, invals, probes, captures, path)
+            if eqn.primitive.name == "scan":
+                outs = _eval_scan(eqn.params, invals, probes, captures, path, skip)
+            else:
+                sub = _sub_jaxpr(eqn)
+                outs = _eval(sub.jaxpr, sub.consts, invals, probes, captures, path, skip)
         else:
             with eqn.ctx.manager:
                 out = bind(eqn.primitive, eqn.params, *invals)
@@ -263,10 +318,40 @@ def _eval(jaxpr, consts, args, probes: dict, captures: dict, prefix: tuple[int, 
     return [read(v) for v in jaxpr.outvars]
 
 
+def _eval_scan(params, invals, probes: dict, captures: dict, path: tuple[int, ...], skip: dict):
+    """A scan with probes inside its body: each probe (and capture) has a leading step axis,
+    sliced per step like the scan's own inputs."""
+    body = params["jaxpr"]
+    nc, nk = params["num_consts"], params["num_carry"]
+    consts, init, xs = invals[:nc], invals[nc:nc + nk], invals[nc + nk:]
+    inside = sorted(q for q in probes if q[: len(path)] == path)
+
+    def step(carry, sliced):
+        xs_t, probes_t = sliced
+        caps: dict = {}
+        outs = _eval(body.jaxpr, body.consts, [*consts, *carry, *xs_t],
+                     dict(zip(inside, probes_t, strict=True)), caps, path, skip)
+        return outs[:nk], (outs[nk:], [caps[q] for q in inside])
+
+    carry, (ys, caps) = lax.scan(step, list(init), (list(xs), [probes[q] for q in inside]),
+                                 length=params["length"], reverse=params["reverse"],
+                                 unroll=params["unroll"])
+    captures.update(zip(inside, caps, strict=True))
+    return [*carry, *ys]
+
+
+def probe_shape(use: Use) -> tuple[int, ...]:
+    """Shape of the probe on a consumer's output: one leading axis per enclosing scan."""
+    return (*use.steps, *use.out_aval.shape)
+
+
 def eval_with_probes(analysis: Analysis, args, probes: dict):
-    """Evaluate the traced function; returns (outputs (O,), {path: operands of the consumer})."""
+    """Evaluate the traced function; returns (outputs (O,), {path: operands of the consumer},
+    the leaf operand itself left out as None)."""
     captures: dict = {}
-    (out,) = _eval(analysis.closed.jaxpr, analysis.closed.consts, args, probes, captures, ())
+    skip = {u.path: u.operand for us in analysis.uses for u in us}
+    (out,) = _eval(analysis.closed.jaxpr, analysis.closed.consts, args, probes, captures, (),
+                   skip)
     return out, captures
 
 
@@ -282,16 +367,22 @@ def _apply_chain(w, chain):
 def local_vjp(uses: tuple[Use, ...], leaf_value, operands: list, cotangents: list):
     """Derivative of the outputs w.r.t. one leaf, summed over its uses: one VJP of the consumers.
 
-    operands[u]: the consumer's operands of use u; cotangents[u]: (A, *y.shape).
-    Returns (A, *leaf.shape).
+    operands[u]: the consumer's operands of use u; cotangents[u]: (A, *steps, *y.shape), one
+    step axis per enclosing scan (a loop-constant leaf's derivative sums over them, a sliced
+    leaf's stacks them). Returns (A, *leaf.shape).
     """
 
     def consumers(w):
         outs = []
         for u, ops in zip(uses, operands, strict=True):
-            ops = list(ops)
-            ops[u.operand] = _apply_chain(w, u.chain)
-            outs.append(bind(u.primitive, u.params, *ops))
+            def one(w_t, ops_t, u=u):
+                ops_t = list(ops_t)
+                ops_t[u.operand] = _apply_chain(w_t, u.chain)
+                return bind(u.primitive, u.params, *ops_t)
+
+            for _, mode in reversed(u.scans):  # one step axis per scan: a sum or a slice of w
+                one = jax.vmap(one, in_axes=(0 if mode == "slice" else None, 0))
+            outs.append(one(w, ops))
         return outs
 
     _, vjp = jax.vjp(consumers, leaf_value)
@@ -367,9 +458,10 @@ def embed_factors(use: Use, operands, cot):
     ``idx`` is the row each position reads, after the gather's own index handling (clipped, or
     -1 for an out-of-range index under fill mode, whose output does not depend on the rows).
     """
-    table, indices = operands
-    v = table.shape[0]
-    idx = indices[..., 0].reshape(1, -1).astype(jnp.int32)
+    _, indices = operands
+    v = use.in_avals[0].shape[0]
+    row = tuple(use.params["dimension_numbers"].start_index_map).index(0)
+    idx = indices[..., row].reshape(1, -1).astype(jnp.int32)
     if use.params["mode"] == lax.GatherScatterMode.FILL_OR_DROP:
         idx = jnp.where((idx >= 0) & (idx < v), idx, -1)
     else:
@@ -379,13 +471,38 @@ def embed_factors(use: Use, operands, cot):
 
 
 def factors_of(use: Use, operands, cot):
-    """(h, g) of a factorable use: `dot_factors`, `conv_factors` or `embed_factors`."""
-    return {"dense": dot_factors, "conv": conv_factors, "embed": embed_factors}[use.rule](
-        use, operands, cot)
+    """(h, g) of a factorable use: `dot_factors`, `conv_factors` or `embed_factors`.
+
+    Inside a scan (operands (S, ...), cot (A, S, ...)) a loop-constant weight is applied at every
+    step, so its derivative is a sum over steps like the positions of a convolution: the steps
+    join the positions T. A stacked weight sliced by the scan is one layer per step: the steps
+    join the batch dims B, whose weights are separate (``J[(S, B, C, R)]``, block by block).
+    """
+    if not use.scans:
+        return {"dense": dot_factors, "conv": conv_factors, "embed": embed_factors}[use.rule](
+            use, operands, cot)
+    inner = dataclasses.replace(use, scans=use.scans[1:])
+    h, g = jax.vmap(lambda ops, c: factors_of(inner, ops, c), in_axes=(0, 1))(operands, cot)
+    s, b = h.shape[0], h.shape[1]  # h (S, B, T[, C]); g (S, A, B, T, R)
+    if use.scans[0][1] == "slice":
+        return h.reshape(s * b, *h.shape[2:]), jnp.swapaxes(g, 0, 1).reshape(
+            g.shape[1], s * b, *g.shape[3:])
+    h = jnp.swapaxes(h, 0, 1).reshape(b, s * h.shape[2], *h.shape[3:])
+    g = jnp.transpose(g, (1, 2, 0, 3, 4)).reshape(g.shape[1], b, s * g.shape[3], g.shape[4])
+    return h, g
 
 
 def factored_sizes(use: Use) -> tuple[int, int, int, int]:
-    """(B, T, C, R) of a factorable use, from the abstract shapes alone (an embedding: C = rows)."""
+    """(B, T, C, R) of a factorable use, from the abstract shapes alone (an embedding: C = rows);
+    the steps of an enclosing scan multiply T (a loop-constant weight) or B (a sliced one)."""
+    b, t, c, r = _step_sizes(use)
+    for n, mode in use.scans:
+        b, t = (b * n, t) if mode == "slice" else (b, t * n)
+    return b, t, c, r
+
+
+def _step_sizes(use: Use) -> tuple[int, int, int, int]:
+    """(B, T, C, R) of one evaluation of a factorable consumer."""
     if use.rule == "embed":
         table, indices = use.in_avals
         return 1, math.prod(indices.shape[:-1]), table.shape[0], math.prod(table.shape[1:])
