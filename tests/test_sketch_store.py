@@ -135,3 +135,28 @@ def test_processes_share_blocks_of_one_store(tmp_path, monkeypatch):
     monkeypatch.undo()
     np.testing.assert_array_equal(np.asarray(second.features[...]),
                                   np.asarray(run(tmp_path / "u.zarr").features[...]))
+
+
+def test_store_in_use_is_waited_for(tmp_path, caplog):
+    """A single-process run holds the store's lock (the kernel store's `locked`) for the whole
+    run: while another holder has it, the run logs that it waits, then completes."""
+    import fcntl
+    import threading
+    import time
+
+    store = tmp_path / "f.zarr"
+    store.mkdir()
+    fd = os.open(store, os.O_RDONLY)
+    fcntl.flock(fd, fcntl.LOCK_EX)
+    out = []
+    worker = threading.Thread(target=lambda: out.append(run(store)))
+    with caplog.at_level("WARNING", logger="ntkcalc"):
+        worker.start()
+        deadline = time.time() + 120
+        while "in use by another process" not in caplog.text and time.time() < deadline:
+            time.sleep(0.2)
+        assert "in use by another process" in caplog.text
+        assert not out  # still waiting
+        os.close(fd)  # release: the run goes on
+        worker.join(240)
+    assert out and out[0].computed == 4

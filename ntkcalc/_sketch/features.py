@@ -18,6 +18,7 @@ one is computed.
 from __future__ import annotations
 
 import concurrent.futures
+import contextlib
 import dataclasses
 import math
 import time
@@ -40,7 +41,7 @@ from .._tiles.fingerprint import differences
 from .._tiles.messages import NOT_A_STORE, STORE_INCOMPLETE, STORE_MISMATCH
 from .._tiles.placement import barrier, process, share
 from .._tiles.progress import logger
-from .._tiles.store import check_writable, describe
+from .._tiles.store import check_writable, describe, locked
 from .block import Sketch, compiled
 from .store import FeatureStore, fingerprint, read_fingerprint
 
@@ -281,7 +282,7 @@ def ntk_features(
     summary = dict(k=k, seed=int(seed), outputs=outputs, method=method,
                    num_outputs=req.num_outputs, dtype=np.dtype(req.dtype).name)
 
-    def blocks(todo, emit):
+    def blocks(todo, emit, block):
         t0 = time.perf_counter()
         total = sum(r1 - r0 for _, r0, r1 in todo)
         where = f" (process {index + 1}/{count})" if count > 1 else ""
@@ -306,16 +307,30 @@ def ntk_features(
         def keep(i, r0, values):
             out[r0 * rows:r0 * rows + values.shape[0]] = values
 
-        seconds = blocks(all_blocks, keep)
+        seconds = blocks(all_blocks, keep, block)
         return Features(out, block=block, computed=len(all_blocks), seconds=seconds, **summary)
 
+    # One process: the store is locked for the whole run (an independent process on the same
+    # store waits, then reuses the blocks); several JAX processes: only creation is locked.
+    with locked(store) if count == 1 else contextlib.nullcontext():
+        return _into_store(store, req=req, x=x, sketch=sketch, seed=int(seed),
+                           outputs=outputs, block=block, memory=memory, blocks=blocks,
+                           summary=summary, process=(index, count))
+
+
+def _into_store(store, *, req, x, sketch, seed, outputs, block, memory, blocks, summary,
+                process) -> Features:
+    """Create or resume the features store, compute this process's missing blocks into it."""
+    index, count = process
+    n, rows, k = int(x.shape[0]), sketch.rows_per_example, sketch.k
     location = describe(store)
-    fp = fingerprint(req=req, x=x, sketch=sketch, seed=int(seed), outputs=outputs, block=block)
+    fp = fingerprint(req=req, x=x, sketch=sketch, seed=seed, outputs=outputs, block=block)
     if index == 0:
-        stored = read_fingerprint(store)
-        if stored is not None:
-            block, fp = _adopt(stored, fp, location=location, memory=memory)
-        FeatureStore.create(store, fp, n=n, rows=rows, k=k, block=block, dtype=req.dtype)
+        with locked(store) if count > 1 else contextlib.nullcontext():
+            stored = read_fingerprint(store)
+            if stored is not None:
+                block, fp = _adopt(stored, fp, location=location, memory=memory)
+            FeatureStore.create(store, fp, n=n, rows=rows, k=k, block=block, dtype=req.dtype)
     barrier("ntkcalc-features-ready")
     stored = read_fingerprint(store)
     if stored is None:
@@ -328,7 +343,7 @@ def ntk_features(
     logger.info("ntkcalc: features store %s: %d of %d blocks done, %d to compute (%d failed "
                 "verification), blocks of %d examples", location, len(mine) - len(todo),
                 len(mine), len(todo), repaired, block)
-    seconds = blocks(todo, fs.write)
+    seconds = blocks(todo, fs.write, block)
     barrier("ntkcalc-features-done")
     missing = len(all_blocks) - fs.count_done()
     if missing:
