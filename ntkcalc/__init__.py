@@ -74,6 +74,7 @@ from ._workflows.demo import run_demo as run_demo
 from ._workflows.drift import DEFAULT_THRESHOLD as DEFAULT_THRESHOLD
 from ._workflows.drift import Drift as Drift
 from ._workflows.drift import drift as drift
+from ._workflows.report import RunDescription as RunDescription
 from ._workflows.report import write_report as write_report
 from ._workflows.study import CheckpointAnswers as CheckpointAnswers
 from ._workflows.study import GroupChange as GroupChange

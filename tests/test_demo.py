@@ -1,10 +1,12 @@
 """The demo at its small scale, end to end, and the seeded data generator behind it.
 
-The demo runs once per session (about half a minute on two cores); the tests read what it wrote.
-Its numbers about the invented data are demo outputs, not checked as facts; what is checked here
-is that the pipeline is consistent with itself where the mathematics says it must be (the
-forecast starts from the observed loss, a restored checkpoint gives back the initial kernel, the
-GCV at the chosen ridge agrees with a scikit-learn refit) and that the report is complete.
+The demo runs once per session (under a minute on two cores); the tests read what it wrote. Its
+numbers about the invented data are demo outputs, not checked as facts; what is checked here is
+that the demo is the workflow (`analyse_run` on its checkpoints, rendered by the report), that
+it is consistent where the mathematics says it must be (the forecast starts from the observed
+loss, the restored step-0 checkpoint's kernel equals the dense ``jax.jacrev`` reference of the
+initial model, the GCV at the chosen ridge agrees with a scikit-learn refit) and that the report
+is complete.
 """
 
 import functools
@@ -13,13 +15,18 @@ import math
 import pathlib
 import re
 
+import jax
 import numpy as np
 import pytest
+from helpers import assert_close, reduce_mode, reference_full
 from test_report import numbers_in
 
+import ntkcalc
+from ntkcalc._workflows import demo as demo_module
 from ntkcalc._workflows.data import CLASS_NAMES, pump_readings
 from ntkcalc._workflows.demo import DemoResult, run_demo
 from ntkcalc._workflows.report import SECTIONS
+from ntkcalc._workflows.study import RunAnalysis
 
 
 @functools.cache
@@ -42,8 +49,9 @@ def test_report_has_every_section(demo):
     assert len(re.findall(r"<h2>", page)) == len(SECTIONS)
     assert len(re.findall(r'src="data:image/png;base64,', page)) == 5
     doc = _json(demo.report_json)
-    assert set(doc["sections"]) == {"spectrum", "heatmap", "drift", "forecast", "risk",
-                                    "feature-rank", "setup"}
+    assert set(doc["sections"]) == {"spectrum", "heatmap", "drift", "groups", "forecast",
+                                    "risk", "feature-rank", "setup"}
+    assert doc["sections"]["heatmap"]["class_names"] == list(CLASS_NAMES)
     for key in ("eigenvalues", "decay_exponent", "condition_number"):
         assert key in doc["sections"]["spectrum"]
     for key in ("gcv", "kare", "loo", "heldout", "chosen_ridge", "heldout_at_chosen",
@@ -95,15 +103,32 @@ def test_one_verdict_everywhere(demo):
     assert fc["train_gap"][0] < 1e-12 and fc["largest_train_gap"] == max(fc["train_gap"])
 
 
+def test_the_demo_is_the_workflow(demo):
+    """One pipeline: the demo's numbers are the RunAnalysis fields, result.json is its to_json."""
+    a = demo.analysis
+    assert isinstance(a, RunAnalysis) and a.verdict == demo.verdict and a.lazy == demo.lazy
+    first = a.checkpoints[0]
+    assert demo.gcv_ridge == first.ridge == first.risk.recommended
+    assert demo.heldout_error == pytest.approx(first.test_mse_ridge, rel=1e-15)
+    assert demo.forecast_gap == pytest.approx(float(np.max(first.gap)), rel=1e-15)
+    assert demo.relative_change == pytest.approx(float(a.drift.relative_change[-1]), rel=1e-15)
+    assert _json(pathlib.Path(demo.out_dir) / "result.json") == json.loads(a.to_json())
+
+
 def test_checkpoints_saved_and_restored(demo):
-    """orbax steps on disk; the kernel of the restored step-0 checkpoint is the initial one."""
+    """orbax steps on disk; the kernel of the restored step-0 checkpoint against the dense
+    jax.jacrev reference (tests/helpers.py) of the initial model built again by hand."""
     doc = _json(demo.report_json)
     steps = doc["sections"]["drift"]["steps"]
     saved = sorted(int(p.name) for p in (pathlib.Path(demo.out_dir) / "checkpoints").iterdir())
     assert saved == steps and steps[0] == 0 and steps[-1] == demo.steps
     assert doc["sections"]["drift"]["kernel_distance"][0] == pytest.approx(0.0, abs=1e-12)
-    arrays = np.load(pathlib.Path(demo.out_dir) / "arrays.npz")
-    np.testing.assert_allclose(arrays["k_init"], arrays["k_init"].T, rtol=0, atol=1e-12)
+    cfg = demo_module._SETTINGS["small"]
+    train, _ = pump_readings(cfg.n_train, cfg.n_test, seed=0)
+    with jax.enable_x64(True):
+        net = ntkcalc.Net.from_linen(*demo_module._model(cfg, train))
+        want = reduce_mode(reference_full(net, train.x[:40]), "trace")
+    assert_close(demo.analysis.drift.kernels[0][:40, :40], want, rtol=1e-10)
 
 
 def test_forecast_starts_where_training_starts(demo):
@@ -121,8 +146,7 @@ def test_gcv_at_the_chosen_ridge_matches_a_scikit_learn_refit(demo):
     from sklearn.kernel_ridge import KernelRidge
 
     doc = _json(demo.report_json)
-    arrays = np.load(pathlib.Path(demo.out_dir) / "arrays.npz")
-    k, labels = arrays["k_init"], arrays["labels"]
+    k, labels = np.asarray(demo.analysis.drift.kernels[0]), demo.analysis.labels
     y = np.eye(len(CLASS_NAMES))[labels]
     r = doc["sections"]["risk"]["chosen_ridge"]
     fit = KernelRidge(alpha=r, kernel="precomputed").fit(k, y)

@@ -1,86 +1,91 @@
-"""The report on a hand-made run directory: sections, embedded figures, numbers, cautions.
+"""The report of a real run: a small MLP trained on scikit-learn's iris with optax, analysed by
+`analyse_run`, rendered by `write_report` — sections, embedded figures, numbers, cautions.
 
-The run directory is written here (not by the demo), with a kernel whose spectrum is known, so the
-report's own computations can be checked against numpy and the cautions provoked one at a time.
+The report's own computations are checked against outside references: the kernel behind the
+spectrum and the heat map against the dense ``jax.jacrev`` reference (tests/helpers.py), the
+eigenvalues against ``numpy.linalg.eigvalsh``, the power-law line against ``numpy.polyfit``, the
+class block means against numpy slices. The cautions are provoked one at a time by replacing
+fields of the typed result (`dataclasses.replace`).
 """
 
 import base64
+import dataclasses
+import functools
 import html
 import json
 import math
 import pathlib
 import re
 
+import jax
+import jax.numpy as jnp
 import numpy as np
+import optax
 import pytest
+from helpers import assert_close, reduce_mode, reference_full
+from sklearn.datasets import load_iris
 
-from ntkcalc._workflows import report
-from ntkcalc._workflows.report import SECTIONS, write_report
+import ntkcalc
+from ntkcalc._workflows.report import SECTIONS, RunDescription, write_report
+from ntkcalc._workflows.study import analyse_run
 
-CLASSES = ["a", "b", "c"]
-
-
-def _kernel(n, *, cond=10.0, seed=0):
-    """A PSD kernel with eigenvalues geometric from 1 down to 1/cond (numpy QR basis)."""
-    q, _ = np.linalg.qr(np.random.default_rng(seed).normal(size=(n, n)))
-    w = np.geomspace(1.0, 1.0 / cond, n)
-    return (q * w) @ q.T
+CLASSES = ("setosa", "versicolor", "virginica")
+WIDTH, STEPS, LR = 256, 20, 0.5  # lr below the stability limit 2N/λ_max of the initial kernel
 
 
-def _results(n=30, steps=(0, 10, 100), ridges=7, **changes):
-    record = list(range(0, 101, 10))
-    loss = np.geomspace(1.0, 0.1, len(record)).tolist()
-    gap = np.linspace(0.0, 0.02, len(record)).tolist()
-    grid = np.logspace(-3, 1, ridges).tolist()
-    curve = np.linspace(0.3, 0.2, ridges).tolist()
-    rank = {"num_examples": n, "num_features": 9, "rank": 9, "full_rank": False,
-            "sigma_max": 3.0, "sigma_min": 0.0, "tol": 1e-14, "margin": 0.0}
-    out = {
-        "kind": "demo", "dtype": "float64", "scale": "small", "cautions": [],
-        "data": {"scenario": "test", "n_train": n, "n_test": 5, "features": ["u", "v"],
-                 "units": ["m", "s"], "class_names": CLASSES, "train_counts": [10, 10, 10]},
-        "model": {"architecture": "MLP 2→8→3", "parameters": 51, "width": 8, "depth": 1},
-        "training": {"loss": "L = (1/N) Σ ½‖f − y‖², O/2 times the MSE", "optimizer": "sgd", "lr": 0.5, "max_stable_lr": 1.0,
-                     "steps": 100, "checkpoint_steps": list(steps), "parameter_change": 0.01},
-        "laziness": {"lazy": True, "sentence": "lazy: the numbers", "relative_change": 0.03,
-                     "distance": 0.02, "forecast_gap": 0.02, "failed": [], "first_step": None,
-                     "spread": {"relative_change": 0.04, "distance": 0.01, "count": 3},
-                     "kernel_threshold": 0.05, "gap_threshold": 0.1, "beyond_spread": False},
-        "forecast": {"steps": record, "train_gap": gap, "test_gap": gap, "tolerance": 0.1,
-                     "largest_train_gap": 0.02, "largest_test_gap": 0.02,
-                     **{f"{a}_{b}_{c}": loss for a in ("observed", "forecast")
-                        for b in ("train", "test") for c in ("mse", "accuracy")}},
-        "drift": {"steps": list(steps), "kernel_distance": [0.0, 0.01, 0.02],
-                  "relative_change": [0.0, 0.02, 0.03], "alignment": [0.3, 0.31, 0.33],
-                  "threshold": 0.05,
-                  "init_spread": {"relative_change": 0.04, "distance": 0.01, "count": 3}},
-        "risk": {"ridges": grid, "gcv": curve, "kare": curve, "loo": curve, "heldout": curve,
-                 "heldout_accuracy": [0.8] * ridges, "best": {"gcv": grid[3], "kare": grid[3],
-                                                             "loo": grid[3]},
-                 "chosen_ridge": grid[3], "chosen_by": "gcv", "estimators_agree": True,
-                 "loo_over_gcv": 1.0, "loo_at_chosen": curve[3], "gcv_at_chosen": curve[3],
-                 "heldout_at_chosen": curve[3], "heldout_accuracy_at_chosen": 0.8,
-                 "final_kernel_heldout": 0.2, "final_kernel_heldout_accuracy": 0.85},
-        "feature_rank": {"layer": "hidden_0", "width": 8,
-                         "checkpoints": {"initialization": rank, "step 100": rank}},
-    }
-    for key, value in changes.items():
-        section, _, field = key.partition("__")
-        if field:
-            out[section][field] = value
-        else:
-            out[section] = value
-    return out
+def _hidden(p, x):
+    return jnp.tanh(x @ p["w"] / 2.0 + 0.1 * p["b"][None, :])  # NTK parameterization, fan-in 4
 
 
-def _write_run(path, results, *, cond=10.0):
-    n = results["data"]["n_train"]
-    path.mkdir(parents=True, exist_ok=True)
-    (path / report.RESULTS).write_text(json.dumps(results))
-    k = _kernel(n, cond=cond)
-    np.savez(path / report.ARRAYS, k_init=k, k_final=k + 0.01 * _kernel(n, seed=1),
-             labels=np.repeat(np.arange(3), n // 3))
-    return path
+def _apply(p, x):
+    return _hidden(p, x) @ p["v"] / np.sqrt(WIDTH)
+
+
+@functools.cache
+def _run():
+    """Iris (standardized; every third example to train, the next to test), a tanh MLP of width
+    `WIDTH` in the NTK parameterization, trained by full-batch optax SGD on
+    L = (1/N) Σ ½‖f − y‖², outputs recorded at every step."""
+    iris = load_iris()
+    x_all = (iris.data - iris.data.mean(0)) / iris.data.std(0)
+    x, labels = x_all[::3], iris.target[::3]
+    xt, labels_t = x_all[1::3], iris.target[1::3]
+    keys = jax.random.split(jax.random.key(0), 3)
+    params = {"w": jax.random.normal(keys[0], (4, WIDTH), jnp.float64),
+              "b": jax.random.normal(keys[2], (WIDTH,), jnp.float64),
+              "v": jax.random.normal(keys[1], (WIDTH, 3), jnp.float64)}
+    y = jnp.asarray(np.eye(3)[labels])
+    grad = jax.jit(jax.grad(lambda p: 0.5 * jnp.sum((_apply(p, x) - y) ** 2) / len(x)))
+    opt = optax.sgd(LR)
+    state, kept = opt.init(params), [params]
+    for _ in range(STEPS):
+        updates, state = opt.update(grad(params), state)
+        params = optax.apply_updates(params, updates)
+        kept.append(params)
+    net = ntkcalc.Net(_apply, kept[0])
+    pairs = [(s, net.replace(params=kept[s])) for s in (0, 10, STEPS)]
+    analysis = analyse_run(
+        pairs, x, labels, x_test=xt, y_test=labels_t, lr=LR, full_batch_gd=True,
+        recorded_steps=np.arange(STEPS + 1),
+        recorded_train=np.stack([np.asarray(_apply(p, x)) for p in kept]),
+        recorded_test=np.stack([np.asarray(_apply(p, xt)) for p in kept]),
+        layer=_hidden, ridges=9)
+    return analysis, net, x, labels
+
+
+@pytest.fixture(scope="module")
+def run():
+    return _run()
+
+
+DESCRIPTION = RunDescription(title="iris test", data="iris flowers", model="MLP 4→16→3, tanh",
+                             training="optax.sgd, full batch", class_names=CLASSES,
+                             details=(("source", "scikit-learn load_iris"),))
+
+
+def _write(analysis, path, description=DESCRIPTION):
+    html_path, json_path = write_report(analysis, out=path, description=description)
+    return _text(html_path), json.loads(_text(json_path))
 
 
 def _text(path) -> str:
@@ -99,10 +104,8 @@ def numbers_in(tree):
         yield tree
 
 
-def test_every_section_with_an_embedded_figure_or_table(tmp_path):
-    run = _write_run(tmp_path / "run", _results())
-    html_path, json_path = write_report(run)
-    page = _text(html_path)
+def test_every_section_with_an_embedded_figure_or_table(run, tmp_path):
+    page, doc = _write(run[0], tmp_path)
     ids = re.findall(r'<section id="([^"]+)">', page)
     assert tuple(ids) == SECTIONS
     images = re.findall(r'src="data:image/png;base64,([^"]+)"', page)
@@ -110,23 +113,26 @@ def test_every_section_with_an_embedded_figure_or_table(tmp_path):
     for data in images:
         assert base64.b64decode(data)[:8] == b"\x89PNG\r\n\x1a\n"
     assert "http" not in page.replace("http-equiv", "")  # self-contained: nothing fetched
-    doc = json.loads(_text(json_path))
     assert set(doc["sections"]) == set(SECTIONS) - {"summary", "cautions"}
     assert len(doc["summary"]) == 5
     assert all(math.isfinite(v) for v in numbers_in(doc))
     for line in doc["summary"]:
         assert html.escape(line) in page
+    # the description travels typed: class names in the heat map and setup, the title on top
+    assert doc["sections"]["heatmap"]["class_names"] == list(CLASSES)
+    assert doc["sections"]["setup"]["class_counts"] == np.bincount(run[3]).tolist()
+    assert "ntkcalc report: iris test" in page and "scikit-learn load_iris" in page
 
 
-def test_spectrum_numbers_match_numpy(tmp_path):
-    """Eigenvalues against numpy.linalg.eigvalsh; the power-law line through its own fit range."""
-    run = _write_run(tmp_path / "run", _results(), cond=1e3)
-    _, json_path = write_report(run, out=tmp_path / "elsewhere")
-    assert json_path.startswith(str(tmp_path / "elsewhere"))
-    spec = json.loads(_text(json_path))["sections"]["spectrum"]
-    k = np.load(run / report.ARRAYS)["k_init"]
-    np.testing.assert_allclose(spec["eigenvalues"], np.linalg.eigvalsh(k)[::-1], rtol=1e-10)
-    np.testing.assert_allclose(spec["condition_number"], 1e3, rtol=1e-8)
+def test_spectrum_and_kernel_match_references(run, tmp_path):
+    """The kernel against dense jax.jacrev; eigenvalues against numpy.linalg.eigvalsh; the
+    power-law line through its own fit range against numpy.polyfit (least squares)."""
+    analysis, net, x, _ = run
+    k = analysis.drift.kernels[0]
+    assert_close(k, reduce_mode(reference_full(net, x), "trace"), rtol=1e-10)
+    spec = _write(analysis, tmp_path)[1]["sections"]["spectrum"]
+    np.testing.assert_allclose(spec["eigenvalues"], np.linalg.eigvalsh(k)[::-1], rtol=1e-9,
+                               atol=1e-12 * np.abs(k).max())
     first, last = spec["decay_fit_range"]
     ranks = np.arange(first, last + 1)
     logs = np.log(np.asarray(spec["eigenvalues"])[first - 1:last])
@@ -135,63 +141,100 @@ def test_spectrum_numbers_match_numpy(tmp_path):
                                [spec["decay_exponent"], spec["decay_intercept"]], rtol=1e-8)
 
 
-def test_block_means_by_class(tmp_path):
-    run = _write_run(tmp_path / "run", _results())
-    doc = json.loads(_text(write_report(run)[1]))
-    k = np.load(run / report.ARRAYS)["k_init"]
-    means = np.asarray(doc["sections"]["heatmap"]["block_means"]["initialization"])
-    assert means[0, 2] == pytest.approx(k[:10, 20:].mean(), rel=1e-12)
-    assert means[1, 1] == pytest.approx(k[10:20, 10:20].mean(), rel=1e-12)
+def test_block_means_by_class(run, tmp_path):
+    analysis, _, _, labels = run
+    doc = _write(analysis, tmp_path)[1]
+    k = analysis.drift.kernels[0]
+    means = np.asarray(doc["sections"]["heatmap"]["block_means"]["step 0"])
+    assert means[0, 2] == pytest.approx(k[np.ix_(labels == 0, labels == 2)].mean(), rel=1e-12)
+    assert means[1, 1] == pytest.approx(k[np.ix_(labels == 1, labels == 1)].mean(), rel=1e-12)
+
+
+def _singular(n: int):
+    v = np.ones((n, 1)) / np.sqrt(n)
+    return ntkcalc.spectrum(v @ v.T)
+
+
+def _with_spectrum(analysis, spec):
+    first = dataclasses.replace(analysis.checkpoints[0], spectrum=spec)
+    return dataclasses.replace(analysis, checkpoints=(first, *analysis.checkpoints[1:]))
+
+
+def _not_lazy(analysis, sentence):
+    verdict = dataclasses.replace(analysis.laziness, lazy=False, sentence=sentence)
+    return dataclasses.replace(analysis, laziness=verdict, lazy=False, verdict=sentence)
 
 
 @pytest.mark.parametrize(
-    ("changes", "cond", "phrase"),
+    ("change", "phrase"),
     [
-        ({"laziness__lazy": False, "laziness__sentence": "not lazy: 40%"}, 10.0, "Not lazy"),
-        ({}, 1e14, "ill-conditioned"),
-        ({"dtype": "float32"}, 10.0, "float32"),
-        ({"cautions": ["Something the analysis warned about."]}, 10.0, "analysis warned"),
+        (lambda a: _not_lazy(a, "not lazy: 40%"), "Not lazy"),
+        (lambda a: _with_spectrum(a, _singular(a.num_train)), "ill-conditioned"),
+        (lambda a: dataclasses.replace(a, dtype="bfloat16"), "bfloat16"),
+        (lambda a: dataclasses.replace(a, cautions=("Something the analysis warned about.",)),
+         "analysis warned"),
     ],
 )
-def test_cautions(tmp_path, changes, cond, phrase):
-    run = _write_run(tmp_path / "run", _results(**changes), cond=cond)
-    html_path, json_path = write_report(run)
-    doc = json.loads(_text(json_path))
+def test_cautions(run, tmp_path, change, phrase):
+    page, doc = _write(change(run[0]), tmp_path)
     assert any(phrase in c for c in doc["cautions"]), doc["cautions"]
     assert f"cautions: {len(doc['cautions'])}" in doc["summary"][-1]
-    assert phrase in _text(html_path)
+    assert phrase in page
 
 
-def test_no_cautions_says_so(tmp_path):
-    doc = json.loads(_text(write_report(_write_run(tmp_path / "run", _results()))[1]))
+def test_no_cautions_says_so(run, tmp_path):
+    analysis = run[0]
+    assert analysis.lazy and analysis.drift.condition_number.max() < 1e12
+    doc = _write(dataclasses.replace(analysis, cautions=()), tmp_path)[1]
     assert doc["cautions"] == []
     assert doc["summary"][-1].endswith("cautions: none.")
 
 
-def test_infinite_numbers_become_null(tmp_path):
+def test_infinite_numbers_become_null(run, tmp_path):
     """A singular kernel has condition number inf: JSON gets null, never Infinity."""
-    run = _write_run(tmp_path / "run", _results())
-    k = np.load(run / report.ARRAYS)
-    v = np.ones((30, 1)) / np.sqrt(30)
-    np.savez(run / report.ARRAYS, k_init=v @ v.T, k_final=k["k_final"], labels=k["labels"])
-    html_path, json_path = write_report(run)
-    text = _text(json_path)
+    page, _ = _write(_with_spectrum(run[0], _singular(run[0].num_train)), tmp_path)
+    text = _text(tmp_path / "report.json")
     assert "Infinity" not in text and "NaN" not in text
     assert json.loads(text)["sections"]["spectrum"]["condition_number"] is None
-    assert "ill-conditioned" in _text(html_path)
+    assert "ill-conditioned" in page
 
 
-def test_bad_sources(tmp_path):
+def test_without_test_set_or_learning_rate(run, tmp_path):
+    """A run analysed without lr and test set still gets every section, saying what is missing."""
+    analysis, net, x, labels = run
+    bare = analyse_run([(0, net), (1, net.replace(params=jax.tree.map(lambda a: 1.01 * a,
+                                                                         net.params)))],
+                       x, labels, layer=_hidden, ridges=5)
+    page, doc = _write(bare, tmp_path, description=None)
+    assert tuple(re.findall(r'<section id="([^"]+)">', page)) == SECTIONS
+    assert "no forecasts" in doc["summary"][0] and "Forecast: none" in doc["summary"][2]
+    assert doc["sections"]["risk"]["heldout"] is None
+    assert doc["sections"]["heatmap"]["class_names"] == ["0", "1", "2"]
+
+
+def test_bad_arguments(run, tmp_path):
+    analysis = run[0]
     with pytest.raises(TypeError, match="`source`"):
         write_report(3)
-    with pytest.raises(FileNotFoundError, match="results.json"):
+    with pytest.raises(FileNotFoundError, match="kernel store"):
         write_report(tmp_path)
-    (tmp_path / report.RESULTS).write_text(json.dumps({"kind": "other"}))
-    with pytest.raises(ValueError, match="kind 'other'"):
-        write_report(tmp_path)
-    run = _write_run(tmp_path / "run", _results())
+    analysis.write(tmp_path / "run")
+    with pytest.raises(ValueError, match="run directory"):
+        write_report(tmp_path / "run")
+    with pytest.raises(ValueError, match="`out`"):
+        write_report(analysis)
     with pytest.raises(TypeError, match="`out`"):
-        write_report(run, out=5)
+        write_report(analysis, out=5)
+    with pytest.raises(TypeError, match="`description`"):
+        write_report(analysis, out=tmp_path, description={"title": "x"})
+    with pytest.raises(ValueError, match="class_names"):
+        write_report(analysis, out=tmp_path, description=RunDescription(class_names=("a",)))
+    with pytest.raises(TypeError, match="`class_names`"):
+        RunDescription(class_names=["a", "b", "c"])
+    with pytest.raises(TypeError, match="`details`"):
+        RunDescription(details=(("only a label",),))
+    with pytest.raises(TypeError, match="`title`"):
+        RunDescription(title=3)
 
 
 def test_kernel_store_gets_spectrum_and_heatmap(tmp_path):
@@ -227,22 +270,27 @@ def _shown_numbers(text: str):
         yield (value / 100, step / 100) if pct else (value, step)
 
 
-def test_one_verdict_and_every_shown_number_in_json(tmp_path):
+def test_one_verdict_and_every_shown_number_in_json(run, tmp_path):
     # A run that is not lazy: the verdict sentence is the same in the summary, the cautions, the
     # drift and forecast sections; every decimal number the page shows is in report.json (up to
     # the rounding it is shown with); every error label names the one convention (MSE).
-    sentence = "not lazy (from step 10): kernel relative change up to 6.71% (threshold 5%)"
-    results = _results(laziness__lazy=False, laziness__sentence=sentence,
-                       laziness__relative_change=0.0671, laziness__failed=["relative_change"],
-                       drift__relative_change=[0.0, 0.0671, 0.05])
-    html_path, json_path = write_report(_write_run(tmp_path / "run", results))
-    doc = json.loads(_text(json_path))
+    # the one verdict of this run's own numbers at a kernel threshold of 0.5% (its kernel moved
+    # about 0.9%), so every number of the sentence is one of the run's
+    a = run[0]
+    first = a.checkpoints[0]
+    verdict = ntkcalc.laziness(relative_change=a.drift.relative_change,
+                               distance=a.drift.distance_to_initial, steps=a.drift.steps,
+                               forecast_gap=first.gap, gap_steps=first.gap_steps,
+                               kernel_threshold=0.005)
+    assert not verdict.lazy
+    sentence = verdict.sentence
+    page, doc = _write(dataclasses.replace(a, laziness=verdict, lazy=False, verdict=sentence),
+                       tmp_path)
     assert doc["verdict"]["sentence"] == sentence and doc["verdict"]["lazy"] is False
     assert sentence in doc["summary"][1]
     assert sum(sentence in c for c in doc["cautions"]) == 1
     assert doc["sections"]["drift"]["verdict"] == sentence
     assert doc["sections"]["forecast"]["verdict"] == sentence
-    page = _text(html_path)
     assert "the run is lazy" not in page  # the no-cautions text cannot contradict the verdict
     known = list(numbers_in(doc))
     cells = re.findall(r'<td class="num">([^<]*)</td>', page) + doc["summary"]

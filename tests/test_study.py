@@ -197,6 +197,8 @@ def test_forecast_from_a_later_checkpoint_matches_linearized_training(run):
     want = np.linalg.norm(ft40 - lin(20, data["xt"])) / np.linalg.norm(ft20 - data["yt"])
     assert fc["test_gap"][-1] == pytest.approx(want, rel=1e-8)
     assert fc["observed_test_mse"][-1] == pytest.approx(np.mean((ft40 - data["yt"]) ** 2))
+    assert fc["observed_test_accuracy"][-1] == pytest.approx(
+        np.mean(np.argmax(ft40, 1) == data["labels_t"]))
 
 
 def test_test_error_matches_scikit_learn_kernel_ridge(run):
@@ -205,7 +207,10 @@ def test_test_error_matches_scikit_learn_kernel_ridge(run):
     k = np.asarray(ntkcalc.ntk(hand[20], data["x"], progress=False))
     kx = np.asarray(ntkcalc.ntk(hand[20], data["xt"], data["x"], progress=False))
     ridge = last["risk"]["ridge"]
-    assert ridge == result.checkpoints[1].risk.best["loo"]
+    # the one ridge rule: GCV's when GCV and LOO agree, else LOO's (RiskEstimates.recommended)
+    est = result.checkpoints[1].risk
+    assert ridge == est.recommended == est.best["gcv" if est.agree else "loo"]
+    assert last["risk"]["chosen_by"] == ("gcv" if est.agree else "loo")
     pred = KernelRidge(alpha=ridge, kernel="precomputed").fit(k, data["y"]).predict(kx)
     assert last["risk"]["test_mse"] == pytest.approx(np.mean((pred - data["yt"]) ** 2), rel=1e-8)
     assert last["risk"]["test_accuracy"] == pytest.approx(
@@ -233,14 +238,22 @@ def test_feature_rank_and_groups_match_direct_computation(run):
 
 
 def test_report_files_and_plot(run):
-    result, report, html_path, *_ = run
+    result, report, html_path, _, kept, _ = run
     with open(html_path, encoding="utf-8") as fh:
         text = fh.read()
-    # overview, drift, heat maps, two forecasts against the run, two risk curves
-    assert text.count("data:image/png;base64,") == 7 and result.verdict.split(":")[0] in text
+    # the one report (report.py): spectrum, heat maps, drift, forecast against the run, risk
+    assert text.count("data:image/png;base64,") == 5 and result.verdict.split(":")[0] in text
+    with open(html_path.replace("report.html", "report.json"), encoding="utf-8") as fh:
+        shown = json.load(fh)
+    assert shown["verdict"]["sentence"] == result.verdict
+    assert shown["sections"]["risk"]["chosen_ridge"] == result.checkpoints[0].ridge
     assert json.loads(result.to_json()) == report
     assert report["labels"] == result.labels.tolist() and len(report["labels"]) == N_TRAIN
     assert len(result.plot().axes) == 4
+    flat = {s: np.concatenate([np.ravel(a) for a in jax.tree_util.tree_leaves(kept[s])])
+            for s in (0, 40)}
+    assert report["parameter_change"] == pytest.approx(
+        np.linalg.norm(flat[40] - flat[0]) / np.linalg.norm(flat[0]), rel=1e-12)
 
 
 def test_rejects_bad_arguments(tmp_path):

@@ -129,12 +129,7 @@ class Forecast(Result):
         else:
             if obs.size == outs.size and obs.shape != outs.shape and outs.shape[-1] == 1:
                 obs = obs.reshape(outs.shape)
-            if self.loss == "mse":
-                scale = float(np.sqrt(2 * outs.shape[1] * self.train_loss[0]))
-            else:
-                with np.errstate(invalid="ignore", over="ignore"):
-                    moved = np.sqrt(np.sum((outs - outs[:1]).reshape(len(outs), -1) ** 2, axis=1))
-                scale = float(np.max(moved[np.isfinite(moved)], initial=0.0))
+            scale = gap_scale(outs, self.train_loss[0], loss=self.loss)
             gap = laziness.output_gap(obs, outs, scale=scale, steps=self.steps)
         worst = float(np.max(gap))
         if worst > tol:
@@ -148,6 +143,27 @@ class Forecast(Result):
                 stacklevel=2,
             )
         return worst
+
+
+def gap_scale(outputs, initial_loss: float, *, loss: Loss) -> float:
+    """The scale of the forecast gap ``‖f_obs − f_lin‖_F / scale`` (`Forecast.departure`).
+
+    Args:
+        outputs: (T, N, O) forecast outputs, ``outputs[0]`` the start ``f_0``.
+        initial_loss: the forecast's loss at the start, ``L_0`` in this module's convention.
+        loss: "mse" or "cross-entropy".
+
+    Returns:
+        mse: the initial residual ``‖f_0 − y‖_F = √(2N·L_0)``. Cross-entropy, whose one-hot
+        targets lie at infinite logits: how far the forecast moves the outputs,
+        ``max_t ‖f_lin(t) − f_0‖_F`` over the finite values (our choice).
+    """
+    outs = np.asarray(outputs)
+    if loss == "mse":
+        return float(np.sqrt(2 * outs.shape[1] * initial_loss))
+    with np.errstate(invalid="ignore", over="ignore"):
+        moved = np.sqrt(np.sum((outs - outs[:1]).reshape(len(outs), -1) ** 2, axis=1))
+    return float(np.max(moved[np.isfinite(moved)], initial=0.0))
 
 
 def _mode_factors(lam, steps, *, lr, n, flow):

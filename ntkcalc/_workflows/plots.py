@@ -128,38 +128,49 @@ def drift_figure(steps, *, relative_change, distance, alignment, threshold: floa
     return fig
 
 
-def forecast_figure(steps, *, observed_train, forecast_train, observed_test, forecast_test,
-                    train_gap, test_gap, threshold: float) -> Figure:
-    """Left: observed MSE (solid) and the lazy-training forecast (dashed), train and test.
-    Right: the gap between observed and forecast outputs relative to the initial residual, with
-    the laziness threshold."""
+def forecast_figure(steps, *, observed_train, forecast_train, train_gap, threshold: float,
+                    observed_test=None, forecast_test=None, test_gap=None,
+                    start: int = 0) -> Figure:
+    """Left: observed MSE (solid) and the lazy-training forecast (dashed), train and (when given)
+    test. Right: the gap between observed and forecast outputs relative to the residual at the
+    forecast's start, with the laziness threshold.
+
+    Args:
+        steps: (S,) training steps; the curves are (S,) arrays at them.
+        threshold: the laziness threshold on the train gap; start: the checkpoint step the
+            forecast starts from (the title says it).
+    """
     steps = np.asarray(steps)
     fig, (ax, gap) = _figure(9.0, 3.6, cols=2)
     ax.plot(steps, observed_train, "-", color=OBSERVED, label="train, observed")
     ax.plot(steps, forecast_train, "--", color=OBSERVED, label="train, forecast")
-    ax.plot(steps, observed_test, "-", color=ESTIMATE, label="test, observed")
-    ax.plot(steps, forecast_test, "--", color=ESTIMATE, label="test, forecast")
+    if observed_test is not None:
+        ax.plot(steps, observed_test, "-", color=ESTIMATE, label="test, observed")
+        ax.plot(steps, forecast_test, "--", color=ESTIMATE, label="test, forecast")
     ax.set_xscale("symlog", linthresh=1)
     ax.set_yscale("log")
-    _label(ax, "training step", MSE_LABEL, "Forecast from the initial kernel vs the run",
+    _label(ax, "training step", MSE_LABEL, f"Forecast from the kernel at step {start} vs the run",
            legend=True)
     gap.plot(steps, train_gap, "-", color=OBSERVED, label="train outputs")
-    gap.plot(steps, test_gap, "-", color=ESTIMATE, label="test outputs")
+    if test_gap is not None:
+        gap.plot(steps, test_gap, "-", color=ESTIMATE, label="test outputs")
     gap.axhline(threshold, color=REFERENCE, linewidth=1.0, linestyle=":",
                 label=f"threshold {threshold:.0%} (train)")
     gap.set_xscale("symlog", linthresh=1)
-    _label(gap, "training step", "‖f_obs − f_lin‖ / ‖f_0 − y‖",
+    _label(gap, "training step", f"‖f_obs − f_lin‖ / ‖f_{start} − y‖",
            "Outputs: gap to the forecast", legend=True)
     return fig
 
 
-def risk_figure(ridges, *, gcv, kare, loo, heldout, chosen: float) -> Figure:
-    """GCV, KARE and leave-one-out estimates and the held-out error against the ridge."""
+def risk_figure(ridges, *, gcv, kare, loo, heldout=None, chosen: float) -> Figure:
+    """GCV, KARE and leave-one-out estimates and (with a test set) the held-out error against
+    the ridge."""
     fig, (ax,) = _figure()
     ax.loglog(ridges, gcv, "-", color=ESTIMATE, label="GCV")
     ax.loglog(ridges, kare, ":", color="#8a3ea8", linewidth=2.0, label="KARE")
     ax.loglog(ridges, loo, "-.", color=THIRD, label="leave-one-out")
-    ax.loglog(ridges, heldout, "-", color=OBSERVED, linewidth=2.0, label="held-out test")
+    if heldout is not None:
+        ax.loglog(ridges, heldout, "-", color=OBSERVED, linewidth=2.0, label="held-out test")
     ax.axvline(chosen, color=REFERENCE, linewidth=1.0, linestyle="--",
                label=f"chosen ridge {chosen:.3g}")
     _label(ax, "ridge r in (K + r·I) α = y", MSE_LABEL,

@@ -1,21 +1,20 @@
 """The report of a run: one self-contained HTML page and a JSON file with every number it shows.
 
-A run directory holds what `run_demo` saved: ``results.json`` (numbers, curves, settings, the
-laziness verdict, and the RuntimeWarnings the analysis raised) and ``arrays.npz`` (the initial and
-final train kernels and the training labels). The report computes the spectrum of the initial
-kernel itself, derives the cautions from the numbers (a non-lazy run, an ill-conditioned kernel,
-float32) and writes:
+It renders a `RunAnalysis` (what `analyse_run` found, typed), with a `RunDescription` of what the
+numbers cannot say (the data, the model, the training, the class names), and derives the cautions
+from the numbers (a non-lazy run, an ill-conditioned kernel, reduced precision) beside the
+analysis's own. It writes:
 
 - ``report.html``: sections, in order, with these ids: ``summary``, ``cautions``, ``spectrum``,
-  ``heatmap``, ``drift``, ``forecast``, ``risk``, ``feature-rank``, ``setup``; every figure an
-  embedded base64 PNG;
+  ``heatmap``, ``drift``, ``groups``, ``forecast``, ``risk``, ``feature-rank``, ``setup``; every
+  figure an embedded base64 PNG;
 - ``report.json``: ``{"summary": [5 lines], "verdict": {...}, "cautions": [...], "sections":
   {id: numbers}}``.
 
-The report says one thing: a single laziness verdict (`ntkcalc.laziness`, saved by the run) is
-quoted in the summary, the cautions and the sections; every number shown is in report.json; and
-every error is one convention, MSE = mean over examples and outputs of (f − y)², named in each
-label (`plots.MSE_LABEL`).
+The report says one thing: a single laziness verdict (`RunAnalysis.laziness`) is quoted in the
+summary, the cautions and the sections; every number shown is in report.json; and every error is
+one convention, MSE = mean over examples and outputs of (f − y)², named in each label
+(`plots.MSE_LABEL`).
 
 A kernel store (the ``store`` of ``ntk(net, x, store=...)``, a zarr group) gets a short report:
 summary, cautions, spectrum and heat map (in the stored order, no labels).
@@ -35,13 +34,15 @@ import numpy as np
 from .. import __version__
 from .._analysis import spectrum
 from .._analysis._checks import COND_WARN
+from .._analysis._result import Result
 from . import plots
+from .study import RunAnalysis, _plain
 
-SECTIONS = ("summary", "cautions", "spectrum", "heatmap", "drift", "forecast", "risk",
+SECTIONS = ("summary", "cautions", "spectrum", "heatmap", "drift", "groups", "forecast", "risk",
             "feature-rank", "setup")
 
-RESULTS = "results.json"
-ARRAYS = "arrays.npz"
+#: The complete result `RunAnalysis.write` puts beside the report.
+RESULT = "result.json"
 
 _CSS = """
 body { font-family: system-ui, -apple-system, "Segoe UI", sans-serif; color: #222;
@@ -120,32 +121,65 @@ def _store_sections(path: str, k: np.ndarray) -> list[_Section]:
     ]
 
 
+@dataclasses.dataclass(frozen=True, repr=False)
+class RunDescription(Result):
+    """What the numbers of a run cannot say, for its report: the data, the model, the training.
+
+    Fields:
+        title: the report's title (e.g. ``"pump condition demo"``).
+        data: what the examples are, a phrase (``"simulated pump readings (seed 0)"``).
+        model: the architecture, a phrase (``"MLP 11→512→512→4, tanh"``).
+        training: how the run was trained (optimizer, loss), a phrase; may be empty.
+        class_names: the names of the O classes (heat map, setup), or None for ``0, 1, ...``.
+        details: further ``(label, value)`` rows of the setup section (features, units, ...).
+    """
+
+    title: str = "training run"
+    data: str = "examples"
+    model: str = "model"
+    training: str = ""
+    class_names: tuple[str, ...] | None = None
+    details: tuple[tuple[str, str], ...] = ()
+
+    def __post_init__(self):
+        for name in ("title", "data", "model", "training"):
+            value = getattr(self, name)
+            if not isinstance(value, str):
+                raise TypeError(f"`{name}` must be a str, got {type(value).__name__}.")
+        names = self.class_names
+        if names is not None and not (isinstance(names, tuple)
+                                      and all(isinstance(c, str) for c in names)):
+            raise TypeError(
+                f"`class_names` must be a tuple of str (one per output) or None, got {names!r}.")
+        rows = self.details
+        if not (isinstance(rows, tuple) and all(
+                isinstance(r, tuple) and len(r) == 2 and all(isinstance(v, str) for v in r)
+                for r in rows)):
+            raise TypeError(
+                f"`details` must be a tuple of (label, value) pairs of str, got {rows!r}.")
+
+
 def _load(source) -> tuple[str, str, list[_Section]]:
-    """Path, title and report sections of a demo run directory or a kernel store."""
+    """Path, title and report sections of a kernel store."""
     if not isinstance(source, str | os.PathLike):
         raise TypeError(
-            f"`source` must be a run directory or kernel store path (str or os.PathLike), got "
-            f"{type(source).__name__}."
+            "`source` must be a `RunAnalysis` (from `analyse_run`) or a kernel store path (str "
+            f"or os.PathLike), got {type(source).__name__}."
         )
     path = os.path.abspath(os.fspath(source))
-    results_path = os.path.join(path, RESULTS)
-    if not os.path.isfile(results_path):
-        k = _load_store(path) if os.path.isdir(path) else None
-        if k is not None:
-            return path, "kernel store", _store_sections(path, k)
-        raise FileNotFoundError(
-            f"`source`={path!r} holds no {RESULTS} and is no ntkcalc kernel store: pass the "
-            "directory `run_demo` wrote, or the `store` of `ntk(..., store=...)`."
-        )
-    with open(results_path, encoding="utf-8") as fh:
-        results = json.load(fh)
-    if results.get("kind") != "demo":
+    k = _load_store(path) if os.path.isdir(path) else None
+    if k is not None:
+        return path, "kernel store", _store_sections(path, k)
+    if os.path.isfile(os.path.join(path, RESULT)):
         raise ValueError(
-            f"`source`={path!r}: {RESULTS} has kind {results.get('kind')!r}; only runs written "
-            "by `run_demo` (kind 'demo') are reported."
+            f"`source`={path!r} is a run directory: its report was written with it "
+            "(report.html, report.json). To write it again, call `write` on the `RunAnalysis` "
+            "(`analyse_run`, or `DemoResult.analysis`)."
         )
-    with np.load(os.path.join(path, ARRAYS)) as arrays:
-        return path, "pump condition demo", _sections(results, {k: arrays[k] for k in arrays.files})
+    raise FileNotFoundError(
+        f"`source`={path!r} is no ntkcalc kernel store: pass the `store` of "
+        "`ntk(..., store=...)`, or a `RunAnalysis`."
+    )
 
 
 def _power_law(spec) -> float:
@@ -156,18 +190,6 @@ def _power_law(spec) -> float:
     i = np.arange(first, last + 1)
     logs = np.log(spec.eigenvalues[first - 1:last])
     return float(np.mean(logs + spec.decay_exponent * np.log(i)))
-
-
-def _cautions(results: dict, spec) -> list[str]:
-    out = list(results["cautions"])
-    verdict = results["laziness"]
-    if not verdict["lazy"]:
-        out.append(
-            f"Not lazy — the verdict: {verdict['sentence']}. The initial kernel's forecasts and "
-            "kernel ridge estimates describe the network linearized at initialization, not the "
-            "trained one."
-        )
-    return list(dict.fromkeys(out + _numeric_cautions(spec, results["dtype"])))
 
 
 def _numeric_cautions(spec, dtype: str) -> list[str]:
@@ -189,40 +211,11 @@ def _numeric_cautions(spec, dtype: str) -> list[str]:
     return out
 
 
-def _summary(results: dict, spec, cautions: list[str]) -> list[str]:
-    d, mdl, tr, fc = results["data"], results["model"], results["training"], results["forecast"]
-    dr, rk, verdict = results["drift"], results["risk"], results["laziness"]
-    fr = list(results["feature_rank"]["checkpoints"].values())[-1]
-    chooser = "GCV" if rk["chosen_by"] == "gcv" else (
-        f"LOO (GCV disagrees with it {rk['loo_over_gcv']:.3g}×, so its ridge is not used)")
-    return [
-        f"Data and run: {d['n_train']} train / {d['n_test']} test simulated pump readings in "
-        f"{len(d['class_names'])} conditions; {mdl['architecture']} ({mdl['parameters']:,} "
-        f"parameters, {results['dtype']}); {tr['steps']} full-batch GD steps at lr={tr['lr']:.3g} "
-        f"(stability limit {tr['max_stable_lr']:.3g}).",
-        f"Laziness verdict: {verdict['sentence']}.",
-        f"Forecast from the initial kernel vs the run, in {plots.MSE_LABEL}: final train "
-        f"{fc['observed_train_mse'][-1]:.4f} observed vs {fc['forecast_train_mse'][-1]:.4f} "
-        f"forecast, test {fc['observed_test_mse'][-1]:.4f} vs {fc['forecast_test_mse'][-1]:.4f} "
-        f"(test outputs off by up to {fc['largest_test_gap']:.1%} of their initial residual); "
-        f"parameters moved {tr['parameter_change']:.2%}, label alignment "
-        f"{dr['alignment'][0]:.3f} → {dr['alignment'][-1]:.3f}.",
-        f"Test error without a test set ({plots.MSE_LABEL}): the ridge is chosen by {chooser}: "
-        f"{rk['chosen_ridge']:.3g}, where GCV estimates {rk['gcv_at_chosen']:.4f} and LOO "
-        f"{rk['loo_at_chosen']:.4f}; kernel ridge on held-out data gives "
-        f"{rk['heldout_at_chosen']:.4f} (accuracy {rk['heldout_accuracy_at_chosen']:.1%}).",
-        f"Spectrum: decay exponent {spec.decay_exponent:.2f}, effective rank "
-        f"{spec.effective_rank:.1f} of {spec.eigenvalues.size}; last hidden features [H, 1] "
-        f"have rank {fr['rank']} of N={fr['num_examples']} ("
-        f"{'full' if fr['full_rank'] else 'not full: a readout alone cannot interpolate'}, "
-        f"margin {fr['margin']:.3g}); cautions: {len(cautions) or 'none'}.",
-    ]
-
-
 def _block_means(k: np.ndarray, labels: np.ndarray, classes: int) -> list[list[float]]:
     onehot = np.eye(classes)[labels]
     counts = onehot.sum(axis=0)
-    return ((onehot.T @ k @ onehot) / np.outer(counts, counts)).tolist()
+    with np.errstate(invalid="ignore"):  # a class with no examples: NaN, null in report.json
+        return ((onehot.T @ np.asarray(k) @ onehot) / np.outer(counts, counts)).tolist()
 
 
 def _spectrum_section(spec, when: str) -> _Section:
@@ -266,17 +259,147 @@ def _heatmap_section(kernels: dict, labels, names, text: str) -> _Section:
     )
 
 
-def _sections(results: dict, arrays: dict) -> list[_Section]:
-    k0, k1, labels = arrays["k_init"], arrays["k_final"], arrays["labels"]
-    spec = spectrum(k0)
-    cautions = _cautions(results, spec)
-    summary = _summary(results, spec, cautions)
-    d, tr, fc, dr, rk, fr, verdict = (results[k] for k in (
-        "data", "training", "forecast", "drift", "risk", "feature_rank", "laziness"))
-    names = d["class_names"]
-    last = tr["steps"]
-    idx = int(np.argmin(np.abs(np.asarray(rk["ridges"]) - rk["chosen_ridge"])))
-    spread = dr.get("init_spread")
+def _class_names(a, desc: RunDescription) -> list[str]:
+    if desc.class_names is not None:
+        if len(desc.class_names) != a.num_outputs:
+            raise ValueError(
+                f"`description.class_names` has {len(desc.class_names)} names; the run has "
+                f"{a.num_outputs} outputs. Pass one name per output.")
+        return list(desc.class_names)
+    return [str(c) for c in range(a.num_outputs)]
+
+
+def _analysis_cautions(a, spec) -> list[str]:
+    out = list(a.cautions)
+    if not a.lazy:
+        out.append(
+            f"Not lazy — the verdict: {a.verdict}. The kernels' forecasts and kernel ridge "
+            "estimates describe the network linearized at a checkpoint, not the trained one."
+        )
+    # the analysis words the float32 caution itself: the precision caution only for others
+    dtype = "float64" if a.dtype == "float32" else a.dtype
+    return list(dict.fromkeys(out + _numeric_cautions(spec, dtype)))
+
+
+def _forecast_numbers(a) -> dict | None:
+    """The forecast of the first checkpoint compared with the run (else the first forecast),
+    and the end of every forecast; None without forecasts."""
+    with_fc = [c for c in a.checkpoints if c.forecast is not None]
+    if not with_fc:
+        return None
+    c = next((c for c in with_fc if c.gap is not None), with_fc[0])
+    f = c.forecast
+    out = {"from_step": c.step, "kernel": c.kernel, "loss": f.loss, "lr": f.lr,
+           "max_stable_lr": f.max_stable_lr, "stable": f.stable,
+           "tolerance": a.laziness.gap_threshold, "compared": c.gap is not None}
+    if c.gap is None:
+        out |= {"steps": c.step + f.steps, "forecast_train_mse": c.train_mse,
+                "forecast_test_mse": c.test_mse, "forecast_train_accuracy": f.train_accuracy,
+                "forecast_test_accuracy": f.test_accuracy}
+    else:
+        at = np.searchsorted(f.steps, c.gap_steps - c.step)
+        out |= {"steps": c.gap_steps, "train_gap": c.gap, "largest_train_gap": float(np.max(c.gap)),
+                "observed_train_mse": c.observed_train_mse, "forecast_train_mse": c.train_mse[at],
+                "observed_train_accuracy": c.observed_train_accuracy,
+                "forecast_train_accuracy": None if f.train_accuracy is None
+                else f.train_accuracy[at]}
+        if c.test_gap is not None:
+            out |= {"test_gap": c.test_gap, "largest_test_gap": float(np.max(c.test_gap)),
+                    "observed_test_mse": c.observed_test_mse, "forecast_test_mse": c.test_mse[at],
+                    "observed_test_accuracy": c.observed_test_accuracy,
+                    "forecast_test_accuracy": None if f.test_accuracy is None
+                    else f.test_accuracy[at]}
+    out["from_each_checkpoint"] = [
+        {"step": c.step, "kernel": c.kernel, "end_step": c.step + int(c.forecast.steps[-1]),
+         "final_train_mse": c.train_mse[-1],
+         "final_test_mse": None if c.test_mse is None else c.test_mse[-1]} for c in with_fc]
+    return _plain(out)
+
+
+def _risk_numbers(c) -> dict:
+    est = c.risk
+    i = int(np.flatnonzero(est.ridges == c.ridge)[0])
+    return _plain({
+        "step": c.step, "ridges": est.ridges, "gcv": est.gcv, "kare": est.kare, "loo": est.loo,
+        "heldout": c.test_mse_by_ridge, "heldout_accuracy": c.test_accuracy_by_ridge,
+        "best": dict(est.best), "chosen_ridge": c.ridge, "chosen_by": est.recommended_by,
+        "estimators_agree": est.agree, "loo_over_gcv": est.ratio, "gcv_at_chosen": c.gcv,
+        "kare_at_chosen": est.kare[i], "loo_at_chosen": c.loo,
+        "heldout_at_chosen": c.test_mse_ridge, "heldout_accuracy_at_chosen": c.test_accuracy_ridge,
+    })
+
+
+def _analysis_summary(a, desc, spec, fc, rk, ranks, cautions) -> list[str]:
+    d = a.drift
+    run = (f"Data and run: {a.num_train} train / {a.num_test} test {desc.data}, {a.num_outputs} "
+           f"outputs; {desc.model} ({a.num_params:,} parameters, {a.dtype}); checkpoints at steps "
+           f"{', '.join(map(str, a.steps.tolist()))}")
+    run += ("; no forecasts (no learning rate given)." if fc is None else
+            f"; forecasts at lr={fc['lr']:.3g} (stability limit {fc['max_stable_lr']:.3g}).")
+    if fc is None:
+        forecast = "Forecast: none (pass `lr` to `analyse_run`)"
+    elif not fc["compared"]:
+        forecast = (f"Forecast from the kernel at step {fc['from_step']} (not compared with the "
+                    f"run), in {plots.MSE_LABEL}: final train {fc['forecast_train_mse'][-1]:.4f}")
+    else:
+        forecast = (f"Forecast from the kernel at step {fc['from_step']} vs the run, in "
+                    f"{plots.MSE_LABEL}: final train {fc['observed_train_mse'][-1]:.4f} observed "
+                    f"vs {fc['forecast_train_mse'][-1]:.4f} forecast")
+        if "observed_test_mse" in fc:
+            forecast += (f", test {fc['observed_test_mse'][-1]:.4f} vs "
+                         f"{fc['forecast_test_mse'][-1]:.4f}")
+        forecast += (f" (train outputs off by up to {fc['largest_train_gap']:.1%} of their "
+                     "initial residual")
+        forecast += (f", test outputs {fc['largest_test_gap']:.1%})" if "largest_test_gap" in fc
+                     else ")")
+    forecast += (f"; parameters moved {a.parameter_change:.2%}, label alignment "
+                 f"{d.alignment[0]:.3f} → {d.alignment[-1]:.3f}.")
+    chooser = "GCV" if rk["chosen_by"] == "gcv" else (
+        f"LOO (GCV disagrees with it {rk['loo_over_gcv']:.3g}×, so its ridge is not used)")
+    risk_line = (f"Test error without a test set ({plots.MSE_LABEL}), kernel ridge on the kernel "
+                 f"at step {rk['step']}: the ridge is chosen by {chooser}: "
+                 f"{rk['chosen_ridge']:.3g}, where GCV estimates {rk['gcv_at_chosen']:.4f} and "
+                 f"LOO {rk['loo_at_chosen']:.4f}")
+    if rk["heldout_at_chosen"] is not None:
+        risk_line += f"; kernel ridge on held-out data gives {rk['heldout_at_chosen']:.4f}"
+        if rk["heldout_accuracy_at_chosen"] is not None:
+            risk_line += f" (accuracy {rk['heldout_accuracy_at_chosen']:.1%})"
+    if ranks:
+        name, r = list(ranks.items())[-1]
+        where = "the readout's input" if r["layer"] in (None, "readout") else r["layer"]
+        rank = (f"; features [H, 1] of {where} at {name}: rank {r['rank']} of "
+                f"N={r['num_examples']} ("
+                f"{'full' if r['full_rank'] else 'not full: a readout alone cannot interpolate'}"
+                f", margin {r['margin']:.3g})")
+    else:
+        rank = "; feature rank not computed"
+    return [
+        run,
+        f"Laziness verdict: {a.verdict}.",
+        forecast,
+        risk_line + ".",
+        f"Spectrum at step {rk['step']}: decay exponent {spec.decay_exponent:.2f}, effective rank "
+        f"{spec.effective_rank:.1f} of {spec.eigenvalues.size}{rank}; cautions: "
+        f"{len(cautions) or 'none'}.",
+    ]
+
+
+def _analysis_sections(a, desc: RunDescription) -> list[_Section]:
+    from .study import _rank_numbers  # the one list of a FeatureRank's numbers
+
+    names = _class_names(a, desc)
+    first, last = a.checkpoints[0], a.checkpoints[-1]
+    spec = first.spectrum
+    cautions = _analysis_cautions(a, spec)
+    fc, rk = _forecast_numbers(a), _risk_numbers(first)
+    ranks = {f"step {s}": _plain(_rank_numbers(r))
+             for s, r in zip(a.steps.tolist(), a.feature_ranks, strict=True) if r is not None}
+    summary = _analysis_summary(a, desc, spec, fc, rk, ranks, cautions)
+    d = a.drift
+    spread = d.laziness.spread
+    steps0, steps1 = int(a.steps[0]), int(a.steps[-1])
+    labels = np.zeros(a.num_train, np.int64) if a.labels is None else a.labels
+    verdict = a.laziness.to_dict()
     return [
         _Section("summary", "Summary", "", {"lines": summary, "verdict": verdict},
                  items=tuple(summary)),
@@ -284,119 +407,177 @@ def _sections(results: dict, arrays: dict) -> list[_Section]:
                  "Where the numbers below can mislead." if cautions else
                  "None: the run is lazy, the kernel well-conditioned, and the computation in "
                  "float64.", {"items": cautions}, items=tuple(cautions)),
-        _spectrum_section(spec, "at initialization"),
+        _spectrum_section(spec, f"at step {first.step}"),
         _heatmap_section(
-            {"initialization": k0, f"step {last}": k1}, labels, names,
-            f"Train-train kernel at initialization and after {last} steps, examples grouped by "
-            "condition. The table gives the mean kernel value of each pair of classes, at "
-            "initialization → at the last step."),
+            {f"step {steps0}": d.kernels[0], f"step {steps1}": d.kernels[-1]}, labels,
+            ["all examples"] if a.labels is None else names,
+            f"Train-train trace kernel at steps {steps0} and {steps1}, examples grouped by class. "
+            f"The table gives the mean kernel value of each pair of classes, at step {steps0} → "
+            f"at step {steps1}."),
+        _drift_section(a, spread),
+        _groups_section(a),
+        _forecast_section(a, fc),
+        _risk_section(rk, last),
         _Section(
-            "drift", "Kernel drift and alignment over training",
-            "The laziness criteria on the kernel: relative change ‖Θ_t − Θ₀‖/‖Θ₀‖ and distance "
-            "1 − ⟨Θ₀, Θ_t⟩/(‖Θ₀‖‖Θ_t‖) to the initial kernel at each saved checkpoint, against "
-            "the threshold and against the same quantities between kernels of independent "
-            "initializations (what the random initialization alone changes); and the centered "
-            "alignment of Θ_t with the one-hot labels.",
-            {"steps": dr["steps"], "relative_change": dr["relative_change"],
-             "kernel_distance": dr["kernel_distance"], "alignment": dr["alignment"],
-             "threshold": dr["threshold"], "init_spread": spread,
-             "parameter_change": tr["parameter_change"], "verdict": verdict["sentence"]},
-            rows=(*((f"step {s}", f"relative change {c:.4g}, distance {a:.4g}, alignment {b:.4f}")
-                    for s, c, a, b in zip(dr["steps"], dr["relative_change"],
-                                          dr["kernel_distance"], dr["alignment"], strict=True)),
-                  ("threshold", _fmt(dr["threshold"])),
-                  *(() if spread is None else ((
-                      f"between {spread['count']} independent initializations",
-                      f"relative change {spread['relative_change']:.4g}, distance "
-                      f"{spread['distance']:.4g}"),)),
-                  ("‖θ_T − θ₀‖ / ‖θ₀‖", _fmt(tr["parameter_change"])),
-                  ("verdict", verdict["sentence"])),
-            figures=(plots.png(plots.drift_figure(
-                dr["steps"], relative_change=dr["relative_change"],
-                distance=dr["kernel_distance"], alignment=dr["alignment"],
-                threshold=dr["threshold"], spread=None if spread is None else (
-                    spread["relative_change"], spread["distance"]))),),
-        ),
-        _Section(
-            "forecast", "Forecast vs actual training",
-            "Gradient descent on the network linearized at initialization, forecast from the "
-            "initial kernel (all output pairs) with the same learning rate and steps, against "
-            "the outputs measured while training. The gap ‖f_obs − f_lin‖/‖f_0 − y‖ on the "
-            f"training outputs is the verdict's forecast criterion. Errors: {plots.MSE_LABEL}.",
-            {k: fc[k] for k in fc} | {"lr": tr["lr"], "max_stable_lr": tr["max_stable_lr"],
-                                      "verdict": verdict["sentence"]},
-            rows=(("largest gap, train outputs (relative to ‖f_0 − y‖)",
-                   f"{fc['largest_train_gap']:.2%}"),
-                  ("largest gap, test outputs (relative to ‖f_0 − y‖)",
-                   f"{fc['largest_test_gap']:.2%}"),
-                  ("threshold on the train gap", _fmt(fc["tolerance"])),
-                  ("verdict", verdict["sentence"]),
-                  ("final train MSE: observed / forecast",
-                   f"{fc['observed_train_mse'][-1]:.4g} / {fc['forecast_train_mse'][-1]:.4g}"),
-                  ("final test MSE: observed / forecast",
-                   f"{fc['observed_test_mse'][-1]:.4g} / {fc['forecast_test_mse'][-1]:.4g}"),
-                  ("final test accuracy: observed / forecast",
-                   f"{fc['observed_test_accuracy'][-1]:.1%} / "
-                   f"{fc['forecast_test_accuracy'][-1]:.1%}"),
-                  ("learning rate / stability limit 2N/λ_max",
-                   f"{tr['lr']:.4g} / {tr['max_stable_lr']:.4g}")),
-            figures=(plots.png(plots.forecast_figure(
-                fc["steps"], observed_train=fc["observed_train_mse"],
-                forecast_train=fc["forecast_train_mse"], observed_test=fc["observed_test_mse"],
-                forecast_test=fc["forecast_test_mse"], train_gap=fc["train_gap"],
-                test_gap=fc["test_gap"], threshold=fc["tolerance"])),),
-        ),
-        _Section(
-            "risk", "Test error without a test set",
-            "Kernel ridge regression on the initial kernel with one-hot targets. GCV, KARE and "
-            "leave-one-out estimate its test error from the training set alone; the held-out "
-            "curve is its error on the test set. The ridge is GCV's, or LOO's when LOO and GCV "
-            f"differ by more than a factor 2 at GCV's ridge. Errors: {plots.MSE_LABEL}.",
-            dict(rk),
-            rows=(("chosen ridge", f"{_fmt(rk['chosen_ridge'])} (by {rk['chosen_by'].upper()})"),
-                  ("LOO / GCV at GCV's ridge (agree within 2×)",
-                   f"{rk['loo_over_gcv']:.4g} ({_fmt(rk['estimators_agree'])})"),
-                  ("GCV / KARE / LOO MSE at the chosen ridge",
-                   f"{rk['gcv_at_chosen']:.4g} / {rk['kare'][idx]:.4g} / "
-                   f"{rk['loo_at_chosen']:.4g}"),
-                  ("held-out MSE at the chosen ridge", _fmt(rk["heldout_at_chosen"])),
-                  ("held-out accuracy at the chosen ridge",
-                   f"{rk['heldout_accuracy_at_chosen']:.1%}"),
-                  ("best ridges: GCV / KARE / LOO", " / ".join(
-                      _fmt(rk["best"][k]) for k in ("gcv", "kare", "loo"))),
-                  (f"held-out MSE / accuracy with the step-{last} kernel",
-                   f"{rk['final_kernel_heldout']:.4g} / "
-                   f"{rk['final_kernel_heldout_accuracy']:.1%}")),
-            figures=(plots.png(plots.risk_figure(
-                rk["ridges"], gcv=rk["gcv"], kare=rk["kare"], loo=rk["loo"],
-                heldout=rk["heldout"], chosen=rk["chosen_ridge"])),),
-        ),
-        _Section(
-            "feature-rank", "Feature rank of the last hidden layer",
-            "Numerical rank of [H, 1], the last hidden layer's features over the training set "
-            "plus a bias column: full rank (= N) means a linear readout can fit any targets. The "
-            "margin is the N-th singular value over the rank tolerance; near 1 the verdict hangs "
-            "on the tolerance.", dict(fr),
+            "feature-rank", "Feature rank: the interpolation check",
+            "Numerical rank of [H, 1], the features of a layer over the training set plus a bias "
+            "column: full rank (= N) means a linear readout can fit any targets. The margin is "
+            "the N-th singular value over the rank tolerance; near 1 the verdict hangs on the "
+            "tolerance.", {"checkpoints": ranks},
             rows=tuple(
                 (f"{name}: rank / N / columns", f"{r['rank']} / {r['num_examples']} / "
                  f"{r['num_features']}  (full rank: {_fmt(r['full_rank'])}, margin "
                  f"{_fmt(r['margin'])}, σ_N {_fmt(r['sigma_min'])}, tolerance {_fmt(r['tol'])})")
-                for name, r in fr["checkpoints"].items()),
+                for name, r in ranks.items()) or (("not computed", "see the cautions"),),
         ),
-        _Section(
-            "setup", "Setup", "", {k: results[k] for k in ("data", "model", "training")}
-            | {"dtype": results["dtype"], "scale": results["scale"]},
-            rows=(("scenario", d["scenario"]), ("features", ", ".join(
-                f"{f} [{u}]" for f, u in zip(d["features"], d["units"], strict=True))),
-                  ("classes", ", ".join(f"{c} ({k})" for c, k in zip(names, d["train_counts"],
-                                                                     strict=True))),
-                  ("model", results["model"]["architecture"]),
-                  ("parameters", _fmt(results["model"]["parameters"])),
-                  ("training loss", tr["loss"]), ("optimizer", tr["optimizer"]),
-                  ("checkpoint steps", ", ".join(map(str, tr["checkpoint_steps"]))),
-                  ("precision", results["dtype"]), ("scale", results["scale"])),
-        ),
+        _setup_section(a, desc, names),
     ]
+
+
+def _drift_section(a, spread) -> _Section:
+    d = a.drift
+    numbers = _plain({
+        "steps": d.steps, "relative_change": d.relative_change,
+        "kernel_distance": d.distance_to_initial, "alignment": d.alignment,
+        "threshold": d.threshold,
+        "init_spread": None if spread is None else dataclasses.asdict(spread),
+        "parameter_change": a.parameter_change, "verdict": a.verdict})
+    return _Section(
+        "drift", "Kernel drift and alignment over training",
+        "The laziness criteria on the kernel: relative change ‖Θ_t − Θ₀‖/‖Θ₀‖ and distance "
+        "1 − ⟨Θ₀, Θ_t⟩/(‖Θ₀‖‖Θ_t‖) to the first checkpoint's kernel at each checkpoint, against "
+        "the threshold and against the same quantities between kernels of independent "
+        "initializations (what the random initialization alone changes); and the centered "
+        "alignment of Θ_t with the one-hot labels.", numbers,
+        rows=(*((f"step {s}", f"relative change {c:.4g}, distance {x:.4g}, alignment {b:.4f}")
+                for s, c, x, b in zip(numbers["steps"], numbers["relative_change"],
+                                      numbers["kernel_distance"], numbers["alignment"],
+                                      strict=True)),
+              ("threshold", _fmt(d.threshold)),
+              *(() if spread is None else ((
+                  f"between {spread.count} independent initializations",
+                  f"relative change {spread.relative_change:.4g}, distance "
+                  f"{spread.distance:.4g}"),)),
+              ("‖θ_T − θ₀‖ / ‖θ₀‖", _fmt(a.parameter_change)),
+              ("verdict", a.verdict)),
+        figures=(plots.png(plots.drift_figure(
+            d.steps, relative_change=d.relative_change, distance=d.distance_to_initial,
+            alignment=d.alignment, threshold=d.threshold, spread=None if spread is None else (
+                spread.relative_change, spread.distance))),),
+    )
+
+
+def _groups_section(a) -> _Section:
+    groups = [_plain(dataclasses.asdict(g)) for g in a.groups]
+    return _Section(
+        "groups", "Which parameter groups moved",
+        "The trace kernel of each top-level parameter group at the first and the last "
+        "checkpoint: its relative change, and its share of the whole kernel's trace.",
+        {"groups": groups, "threshold": a.drift.threshold},
+        rows=tuple((g["group"], f"relative change {_fmt(g['relative_change'])}, share of the "
+                    f"trace {g['share_first']:.4g} → {g['share_last']:.4g}, moved: "
+                    f"{_fmt(g['moved'])}") for g in groups),
+    )
+
+
+def _forecast_section(a, fc: dict | None) -> _Section:
+    title = "Forecast vs actual training"
+    if fc is None:
+        return _Section("forecast", title, "No forecast: `analyse_run` was given no learning "
+                        "rate.", {"verdict": a.verdict})
+    s = fc["from_step"]
+    rows = []
+    if fc["compared"]:
+        rows += [("largest gap, train outputs (relative to ‖f_t − y‖)",
+                  f"{fc['largest_train_gap']:.2%}")]
+        if "largest_test_gap" in fc:
+            rows += [("largest gap, test outputs (relative to ‖f_t − y‖)",
+                      f"{fc['largest_test_gap']:.2%}")]
+        rows += [("threshold on the train gap", _fmt(fc["tolerance"])), ("verdict", a.verdict),
+                 ("final train MSE: observed / forecast",
+                  f"{fc['observed_train_mse'][-1]:.4g} / {fc['forecast_train_mse'][-1]:.4g}")]
+        if "observed_test_mse" in fc:
+            rows += [("final test MSE: observed / forecast",
+                      f"{fc['observed_test_mse'][-1]:.4g} / {fc['forecast_test_mse'][-1]:.4g}")]
+        if fc.get("observed_test_accuracy") is not None:
+            rows += [("final test accuracy: observed / forecast",
+                      f"{fc['observed_test_accuracy'][-1]:.1%} / "
+                      f"{fc['forecast_test_accuracy'][-1]:.1%}")]
+    rows += [(f"forecast from step {e['step']} to step {e['end_step']}: final train / test MSE",
+              f"{e['final_train_mse']:.4g} / {_fmt(e['final_test_mse'])}")
+             for e in fc["from_each_checkpoint"]]
+    rows += [("learning rate / stability limit 2N/λ_max",
+              f"{fc['lr']:.4g} / {fc['max_stable_lr']:.4g}")]
+    figures = () if not fc["compared"] else (plots.png(plots.forecast_figure(
+        fc["steps"], observed_train=fc["observed_train_mse"],
+        forecast_train=fc["forecast_train_mse"], observed_test=fc.get("observed_test_mse"),
+        forecast_test=fc.get("forecast_test_mse"), train_gap=fc["train_gap"],
+        test_gap=fc.get("test_gap"), threshold=fc["tolerance"], start=s)),)
+    return _Section(
+        "forecast", title,
+        f"Gradient descent on the network linearized at step {s}, forecast from that "
+        f"checkpoint's kernel ({fc['kernel']}) with the run's learning rate, against the outputs "
+        "recorded while training. The gap ‖f_obs − f_lin‖/‖f_t − y‖ on the training outputs is "
+        f"the verdict's forecast criterion. Errors: {plots.MSE_LABEL}.",
+        fc | {"verdict": a.verdict}, rows=tuple(rows), figures=figures)
+
+
+def _risk_section(rk: dict, last) -> _Section:
+    rows = [("chosen ridge", f"{_fmt(rk['chosen_ridge'])} (by {rk['chosen_by'].upper()})"),
+            ("LOO / GCV at GCV's ridge (agree within 2×)",
+             f"{rk['loo_over_gcv']:.4g} ({_fmt(rk['estimators_agree'])})"),
+            ("GCV / KARE / LOO MSE at the chosen ridge",
+             f"{rk['gcv_at_chosen']:.4g} / {rk['kare_at_chosen']:.4g} / "
+             f"{rk['loo_at_chosen']:.4g}"),
+            ("best ridges: GCV / KARE / LOO",
+             " / ".join(_fmt(rk["best"][k]) for k in ("gcv", "kare", "loo")))]
+    if rk["heldout_at_chosen"] is not None:
+        rows.insert(3, ("held-out MSE at the chosen ridge", _fmt(rk["heldout_at_chosen"])))
+    if rk["heldout_accuracy_at_chosen"] is not None:
+        rows.insert(4, ("held-out accuracy at the chosen ridge",
+                        f"{rk['heldout_accuracy_at_chosen']:.1%}"))
+    at_last = None
+    if last.step != rk["step"]:
+        at_last = _risk_numbers(last)
+        held = at_last["heldout_at_chosen"]
+        rows.append((f"with the step-{last.step} kernel: ridge, GCV / LOO MSE, held-out MSE",
+                     f"{at_last['chosen_ridge']:.4g} (by {at_last['chosen_by'].upper()}), "
+                     f"{at_last['gcv_at_chosen']:.4g} / {at_last['loo_at_chosen']:.4g}, "
+                     f"{_fmt(held)}"))
+    return _Section(
+        "risk", "Test error without a test set",
+        f"Kernel ridge regression on the trace kernel at step {rk['step']} with one-hot targets. "
+        "GCV, KARE and leave-one-out estimate its test error from the training set alone; the "
+        "held-out curve is its error on the test set. The ridge is GCV's, or LOO's when LOO and "
+        f"GCV differ by more than a factor 2 at GCV's ridge. Errors: {plots.MSE_LABEL}.",
+        rk | {"last_checkpoint": at_last}, rows=tuple(rows),
+        figures=(plots.png(plots.risk_figure(
+            rk["ridges"], gcv=rk["gcv"], kare=rk["kare"], loo=rk["loo"], heldout=rk["heldout"],
+            chosen=rk["chosen_ridge"])),),
+    )
+
+
+def _setup_section(a, desc: RunDescription, names: list[str]) -> _Section:
+    counts = None if a.labels is None else np.bincount(a.labels, minlength=a.num_outputs).tolist()
+    numbers = _plain({
+        "title": desc.title, "data": desc.data, "model": desc.model, "training": desc.training,
+        "class_names": names, "class_counts": counts, "num_train": a.num_train,
+        "num_test": a.num_test, "num_outputs": a.num_outputs, "num_params": a.num_params,
+        "checkpoint_steps": a.steps, "kinds": a.kinds, "dtype": a.dtype,
+        "details": [list(r) for r in desc.details]})
+    classes = ", ".join(names if counts is None else
+                        (f"{c} ({k})" for c, k in zip(names, counts, strict=True)))
+    return _Section(
+        "setup", "Setup", "", numbers,
+        rows=(("data", f"{a.num_train} train / {a.num_test} test {desc.data}"),
+              ("model", desc.model), ("parameters", _fmt(a.num_params)),
+              *((("training", desc.training),) if desc.training else ()),
+              ("outputs (classes, train counts)", classes),
+              ("checkpoint steps", ", ".join(map(str, a.steps.tolist()))),
+              ("the kernel behind each answer", "; ".join(f"{k}: {v}"
+                                                          for k, v in a.kinds.items())),
+              ("precision", a.dtype), *desc.details),
+    )
 
 
 def _render(section: _Section) -> str:
@@ -418,39 +599,46 @@ def _render(section: _Section) -> str:
     return "\n".join(parts)
 
 
-def _finite_or_none(value):
-    """JSON has no inf/NaN: they become None (and are listed by name in the caution text)."""
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if isinstance(value, dict):
-        return {k: _finite_or_none(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_finite_or_none(v) for v in value]
-    return value
-
-
-def write_report(source, *, out=None) -> tuple[str, str]:
-    """Write ``report.html`` and ``report.json`` for a run directory.
+def write_report(source, *, out=None, description: RunDescription | None = None
+                 ) -> tuple[str, str]:
+    """Write ``report.html`` and ``report.json`` for a run or a kernel store.
 
     Args:
-        source: the directory `run_demo` wrote (with ``results.json`` and ``arrays.npz``), or a
-            kernel store of K(X, X) written by ``ntk(..., store=...)``.
-        out: directory for the two files (created); default ``source``.
+        source: a `RunAnalysis` (from `analyse_run`), or a kernel store of K(X, X) written by
+            ``ntk(..., store=...)``.
+        out: directory for the two files (created); required for a `RunAnalysis`, default the
+            store's own directory.
+        description: for a `RunAnalysis`, a `RunDescription` of the data, model and training
+            (default: a generic one).
 
     Returns:
         ``(html_path, json_path)``, absolute paths.
     """
-    path, what, sections = _load(source)
     if out is not None and not isinstance(out, str | os.PathLike):
         raise TypeError(f"`out` must be a directory path or None, got {type(out).__name__}.")
+    if description is not None and not isinstance(description, RunDescription):
+        raise TypeError(
+            f"`description` must be a RunDescription or None, got {type(description).__name__}.")
+    if isinstance(source, RunAnalysis):
+        if out is None:
+            raise ValueError("`out` is required for a RunAnalysis: the directory to write into.")
+        desc = RunDescription() if description is None else description
+        path, what, sections = "RunAnalysis", desc.title, _analysis_sections(source, desc)
+    else:
+        if description is not None:
+            raise ValueError("`description` describes a RunAnalysis; a kernel store has none.")
+        path, what, sections = _load(source)
     target = path if out is None else os.path.abspath(os.fspath(out))
+    if os.path.exists(target) and not os.path.isdir(target):
+        raise ValueError(
+            f"`out`={target!r} exists and is not a directory; pass a new or writable directory.")
     os.makedirs(target, exist_ok=True)
     title = f"ntkcalc report: {what}"
     page = "\n".join([
         "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
         f"<title>{html.escape(title)}</title><style>{_CSS}</style></head><body>",
         f"<h1>{html.escape(title)}</h1>",
-        f'<p class="meta">ntkcalc {__version__} · run directory {html.escape(path)}</p>',
+        f'<p class="meta">ntkcalc {__version__} · source {html.escape(path)}</p>',
         *(_render(s) for s in sections), "</body></html>",
     ])
     by_id = {s.id: s.numbers for s in sections}
@@ -465,5 +653,5 @@ def write_report(source, *, out=None) -> tuple[str, str]:
     with open(html_path, "w", encoding="utf-8") as fh:
         fh.write(page)
     with open(json_path, "w", encoding="utf-8") as fh:
-        json.dump(_finite_or_none(document), fh, indent=1, ensure_ascii=False, allow_nan=False)
+        json.dump(_plain(document), fh, indent=1, ensure_ascii=False, allow_nan=False)
     return html_path, json_path

@@ -20,19 +20,20 @@ needs, so nobody wires modes by hand:
   ``f_lin(θ, x) = f(θ_t, x) + J_t(x)(θ − θ_t)`` (Lee et al., NeurIPS 2019, arXiv:1902.06720): "if
   training continued lazily from step t, where does it land?";
 - at the same checkpoints, kernel ridge on the trace kernel: leave-one-out, GCV and KARE over a
-  ridge grid (`risk`), the test error of kernel ridge at the ridge leave-one-out chooses when a
-  test set is given.
+  ridge grid (`risk`), the test error of kernel ridge at the recommended ridge
+  (`RiskEstimates.recommended`: GCV's when GCV and LOO agree, else LOO's) when a test set is
+  given.
 
 Errors are in one convention: MSE, the mean over examples and outputs of ``(f − y)²``.
 """
 
 from __future__ import annotations
 
-import base64
+import contextlib
 import dataclasses
-import html
 import json
 import os
+import warnings
 from collections.abc import Sequence
 from typing import Literal
 
@@ -45,7 +46,7 @@ from .._analysis._batches import batch_slices, pad_rows
 from .._analysis._result import Result
 from .._analysis.alignment import alignment
 from .._analysis.expressivity import FeatureRank, feature_rank
-from .._analysis.forecast import Forecast, forecast
+from .._analysis.forecast import Forecast, forecast, gap_scale
 from .._analysis.laziness import Laziness, laziness, output_gap
 from .._analysis.laziness import relative_change as _relative_change
 from .._analysis.ridge import ridge_fit
@@ -54,8 +55,7 @@ from .._analysis.spectrum import Spectrum, spectrum
 from .._kernel import ntk, ntk_by_layer
 from .._kind import KernelArray, per_output_kernel
 from . import plots
-from .demo import _Cautions  # RuntimeWarnings kept as cautions, as the demo keeps them
-from .drift import DEFAULT_THRESHOLD, Drift, _from_directory, drift
+from .drift import DEFAULT_THRESHOLD, MOVED_NOTE, Drift, _from_directory, drift
 
 #: Above this many (example, output) rows N·O the forecast uses the per-output kernel ``trace / O``
 #: instead of the full (N, N, O, O) kernel. The forecast eigendecomposes the (N·O, N·O) matrix
@@ -93,6 +93,24 @@ NOT_GD_NOTE = (
     "lr={lr:g}; they were not compared with the checkpoints (full_batch_gd=False), so the laziness "
     "verdict rests on the kernel alone."
 )
+
+
+class _Cautions:
+    """Collects the RuntimeWarnings of the analysis: each becomes a caution of the result."""
+
+    def __init__(self):
+        self.items: list[str] = []
+
+    @contextlib.contextmanager
+    def watch(self):
+        with warnings.catch_warnings(record=True) as log:
+            warnings.simplefilter("always", RuntimeWarning)
+            yield
+        for w in log:
+            if issubclass(w.category, RuntimeWarning):
+                self.items.append(str(w.message))
+            else:
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
@@ -136,15 +154,20 @@ class CheckpointAnswers(Result):
         gap_steps: (S,) the training steps of ``gap``, or None.
         observed_train_mse, observed_test_mse: (S,) MSE of the run itself at ``gap_steps``
             (test: with recorded test outputs), or None.
+        observed_train_accuracy, observed_test_accuracy: (S,) accuracy of the run itself at
+            ``gap_steps`` for classification targets, or None.
         spectrum: `Spectrum` of the trace kernel on the training set.
         alignment: centered kernel-target alignment of the trace kernel.
         risk: `RiskEstimates` of kernel ridge on the trace kernel (ridges on its axis).
-        ridge: the ridge leave-one-out chooses (``risk.best["loo"]``).
+        ridge: the recommended ridge, ``risk.recommended``: GCV's when GCV and leave-one-out
+            agree, else LOO's (``risk.recommended_by`` says which).
         loo, gcv: the LOO and GCV estimates at that ridge (MSE).
         test_mse_ridge: MSE of kernel ridge at ``ridge`` on the test set, or None.
         test_accuracy_ridge: its accuracy for classification targets, or None.
         test_mse_by_ridge: (R,) MSE of kernel ridge on the test set at every ridge of
             ``risk.ridges``, or None without a test set.
+        test_accuracy_by_ridge: (R,) its accuracy at every ridge for classification targets,
+            or None.
     """
 
     step: int
@@ -158,6 +181,8 @@ class CheckpointAnswers(Result):
     gap_steps: np.ndarray | None
     observed_train_mse: np.ndarray | None
     observed_test_mse: np.ndarray | None
+    observed_train_accuracy: np.ndarray | None
+    observed_test_accuracy: np.ndarray | None
     spectrum: Spectrum
     alignment: float
     risk: RiskEstimates
@@ -167,6 +192,7 @@ class CheckpointAnswers(Result):
     test_mse_ridge: float | None
     test_accuracy_ridge: float | None
     test_mse_by_ridge: np.ndarray | None
+    test_accuracy_by_ridge: np.ndarray | None
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
@@ -177,6 +203,8 @@ class RunAnalysis(Result):
         steps: (T,) the checkpoints' training steps.
         num_train, num_test: examples in the training and test sets (num_test 0 without one).
         num_outputs: O, the model's outputs.
+        num_params: the model's number of parameters.
+        parameter_change: ``‖θ_T − θ_0‖ / ‖θ_0‖`` between the first and last checkpoint.
         labels: (N,) the training set's integer classes for classification targets, else None.
         dtype: the dtype of every kernel.
         kinds: answer → the kernel it came from (e.g. ``"drift": "trace (N, N)"``).
@@ -196,6 +224,8 @@ class RunAnalysis(Result):
     num_train: int
     num_test: int
     num_outputs: int
+    num_params: int
+    parameter_change: float
     labels: np.ndarray | None
     dtype: str
     kinds: dict
@@ -213,7 +243,8 @@ class RunAnalysis(Result):
         d = self.drift
         return _plain({
             "steps": self.steps, "num_train": self.num_train, "num_test": self.num_test,
-            "num_outputs": self.num_outputs, "labels": self.labels, "dtype": self.dtype,
+            "num_outputs": self.num_outputs, "num_params": self.num_params,
+            "parameter_change": self.parameter_change, "labels": self.labels, "dtype": self.dtype,
             "kinds": self.kinds,
             "lazy": self.lazy, "verdict": self.verdict, "laziness": self.laziness.to_dict(),
             "drift": {"table": d.to_dict(), "threshold": d.threshold, "notes": list(d.notes)},
@@ -267,21 +298,25 @@ class RunAnalysis(Result):
         spec.legend(fontsize="small", frameon=False)
         return fig
 
-    def write(self, directory) -> tuple[str, str]:
-        """Write ``result.json`` (`to_json`) and a self-contained ``report.html`` (figures as
-        base64 PNG) into ``directory`` (created). Returns their paths ``(html, json)``."""
-        if not isinstance(directory, str | os.PathLike):
-            raise TypeError(
-                f"`directory` must be a path (str or os.PathLike), got {type(directory).__name__}.")
-        path = os.path.abspath(os.fspath(directory))
-        if os.path.exists(path) and not os.path.isdir(path):
-            raise ValueError(f"`directory`={path!r} exists and is not a directory; pass one.")
-        os.makedirs(path, exist_ok=True)
-        json_path, html_path = os.path.join(path, "result.json"), os.path.join(path, "report.html")
+    def write(self, directory, *, description=None) -> tuple[str, str]:
+        """Write ``result.json`` (`to_json`, every field) and the report (`write_report`:
+        ``report.html``, self-contained with its figures as base64 PNG, and ``report.json``, every
+        number it shows) into ``directory`` (created).
+
+        Args:
+            directory: where the three files go.
+            description: a `RunDescription` of the data, model and training (what the numbers
+                cannot say), or None.
+
+        Returns:
+            ``(html_path, json_path)``: ``report.html`` and ``result.json``.
+        """
+        from .report import write_report  # the report renders this result
+
+        html_path, _ = write_report(self, out=directory, description=description)
+        json_path = os.path.join(os.path.dirname(html_path), "result.json")
         with open(json_path, "w", encoding="utf-8") as fh:
             fh.write(self.to_json(indent=1))
-        with open(html_path, "w", encoding="utf-8") as fh:
-            fh.write(_html(self))
         return html_path, json_path
 
 
@@ -400,6 +435,7 @@ def analyse_run(
                              num_classes=o)
         _checks.same_outputs("y_test", yt, want=o, ref="the model's outputs")
         labels_t = _class_labels(y_test, yt)
+    labels = _class_labels(y_train, y)
     record = _recorded(recorded_steps, recorded_train, recorded_test, full_batch_gd=full_batch_gd,
                        n=n, o=o, m=None if xt is None else xt.shape[0])
     if record is None and full_batch_gd:  # the checkpoints are the recorded outputs
@@ -419,7 +455,8 @@ def analyse_run(
         i = int(np.flatnonzero(step_arr == s)[0])
         with cautions.watch():
             answers.append(_answers(
-                nets[i], int(s), x, y, xt, yt, labels_t, kernel=dr.kernels[i], f=outputs[i],
+                nets[i], int(s), x, y, xt, yt, labels, labels_t, kernel=dr.kernels[i],
+                f=outputs[i],
                 ft=None if xt is None else _outputs(run, nets[i], xt),
                 lr=lr, loss=loss,
                 horizon=span, ridges=ridges, full_rows=full_kernel_rows, options=options,
@@ -430,7 +467,9 @@ def analyse_run(
         verdict = laziness(relative_change=dr.relative_change, distance=dr.distance_to_initial,
                            steps=dr.steps, forecast_gap=first.gap, gap_steps=first.gap_steps,
                            spread=dr.laziness.spread, kernel_threshold=threshold)
-    notes = list(dr.notes)
+    # the drift's own note on a moved kernel is its verdict without the forecast gap: kept only
+    # when the one verdict agrees
+    notes = [c for c in dr.notes if c != MOVED_NOTE or not verdict.lazy]
     if "forecast_gap" in verdict.failed:
         notes.append(GAP_NOTE.format(step=first.step, gap=verdict.forecast_gap,
                                      tol=verdict.gap_threshold))
@@ -448,7 +487,9 @@ def analyse_run(
     }
     return RunAnalysis(
         steps=step_arr, num_train=n, num_test=0 if xt is None else int(xt.shape[0]),
-        num_outputs=o, labels=_class_labels(y_train, y), dtype=dtype, kinds=kinds, drift=dr,
+        num_outputs=o, num_params=nets[0].num_params,
+        parameter_change=_parameter_change(nets[0], nets[-1]), labels=labels, dtype=dtype,
+        kinds=kinds, drift=dr,
         laziness=verdict, lazy=verdict.lazy,
         verdict=verdict.sentence, groups=groups, feature_ranks=ranks, checkpoints=tuple(answers),
         cautions=tuple(dict.fromkeys(notes + cautions.items)),
@@ -597,21 +638,15 @@ def _feature_rank(net: Net, x, layer, step: int, cautions: _Cautions) -> Feature
         return None
 
 
-def _gap_scale(path: np.ndarray, y: np.ndarray, *, loss: str) -> float:
-    """The scale of the forecast gap, as `Forecast.departure` defines it: the initial residual
-    ``‖f_0 − y‖_F`` for mse; for cross-entropy, whose one-hot targets lie at infinite logits,
-    how far the forecast moves the outputs, ``max_t ‖f_lin(t) − f_0‖_F``."""
-    if loss == "mse":
-        return float(np.linalg.norm(path[0] - y))
-    with np.errstate(invalid="ignore", over="ignore"):
-        moved = np.sqrt(np.sum((path - path[:1]).reshape(len(path), -1) ** 2, axis=1))
-    return float(np.max(moved[np.isfinite(moved)], initial=0.0))
-
-
 def _mse(f, y) -> np.ndarray:
     """The one error convention: mean over examples and outputs of ``(f − y)²`` (per leading
     index for stacked outputs)."""
     return np.mean((np.asarray(f) - np.asarray(y)) ** 2, axis=(-2, -1))
+
+
+def _accuracy(f, labels) -> np.ndarray:
+    """Fraction with ``argmax_a f_a == label`` (per leading index for stacked outputs)."""
+    return np.mean(np.argmax(np.asarray(f), axis=-1) == labels, axis=-1)
 
 
 def _forecast_grid(horizon: int, later: list[int]) -> np.ndarray:
@@ -620,7 +655,7 @@ def _forecast_grid(horizon: int, later: list[int]) -> np.ndarray:
     return np.unique(np.concatenate([[0], grid, np.asarray(later, np.int64)]))
 
 
-def _answers(net, step, x, y, xt, yt, labels_t, *, kernel, f, ft, lr, loss, horizon, ridges,
+def _answers(net, step, x, y, xt, yt, labels, labels_t, *, kernel, f, ft, lr, loss, horizon, ridges,
              full_rows, options, record, cautions) -> CheckpointAnswers:
     """Forecast (from ``f``, ``ft``: the outputs at this checkpoint), spectrum, alignment, risk
     and kernel-ridge test error at one checkpoint; ``kernel`` is its (N, N) trace kernel."""
@@ -652,12 +687,13 @@ def _answers(net, step, x, y, xt, yt, labels_t, *, kernel, f, ft, lr, loss, hori
             gap_steps, seen = record[0][keep], record[1][keep]
             at = np.searchsorted(fc.steps, gap_steps - step)
             gap = output_gap(seen, fc.train_outputs[at],
-                             scale=_gap_scale(fc.train_outputs, y, loss=loss),
+                             scale=gap_scale(fc.train_outputs, fc.train_loss[0], loss=loss),
                              steps=gap_steps, observed_name="recorded_train")
             if record[2] is not None:
                 seen_test = record[2][keep]
                 test_gap = output_gap(seen_test, fc.test_outputs[at],
-                                      scale=_gap_scale(fc.test_outputs, yt, loss=loss),
+                                      scale=gap_scale(fc.test_outputs, fc.test_loss[0],
+                                                      loss=loss),
                                       steps=gap_steps, observed_name="recorded_test")
     elif xt is not None:
         kx = np.asarray(ntk(net, xt, x, outputs="trace", **options))
@@ -665,23 +701,35 @@ def _answers(net, step, x, y, xt, yt, labels_t, *, kernel, f, ft, lr, loss, hori
     scale = float(np.mean(np.diag(k)))
     grid = scale * np.logspace(*RIDGE_DECADES, ridges)
     est = risk(k, y, ridges=grid)
-    r = est.best["loo"]
+    r = est.recommended  # GCV's ridge when GCV and LOO agree, else LOO's
     i = int(np.flatnonzero(est.ridges == r)[0])
-    mse_r = acc_r = held = None
+    mse_r = acc_r = held = held_acc = None
     if kx is not None:  # kernel ridge on the test set at every ridge of the grid (R, M, O)
         pred = ridge_fit(k, y, ridge=est.ridges, k_test_train=kx).test_predictions
         held = _mse(pred, yt[None])
         mse_r = float(held[i])
-        acc_r = None if labels_t is None else float(np.mean(np.argmax(pred[i], 1) == labels_t))
+        if labels_t is not None:
+            held_acc = _accuracy(pred, labels_t)
+            acc_r = float(held_acc[i])
     return CheckpointAnswers(
         step=step, kernel=kernel_used, kernel_dtype=str(k.dtype), forecast=fc,
         train_mse=train_mse, test_mse=test_mse, gap=gap, test_gap=test_gap, gap_steps=gap_steps,
         observed_train_mse=None if seen is None else _mse(seen, y),
-        observed_test_mse=None if seen_test is None else _mse(seen_test, yt), spectrum=spec,
+        observed_test_mse=None if seen_test is None else _mse(seen_test, yt),
+        observed_train_accuracy=None if seen is None or labels is None else _accuracy(seen, labels),
+        observed_test_accuracy=None if seen_test is None or labels_t is None
+        else _accuracy(seen_test, labels_t), spectrum=spec,
         alignment=alignment(k, y), risk=est, ridge=float(r), loo=float(est.loo[i]),
         gcv=float(est.gcv[i]), test_mse_ridge=mse_r, test_accuracy_ridge=acc_r,
-        test_mse_by_ridge=held,
+        test_mse_by_ridge=held, test_accuracy_by_ridge=held_acc,
     )
+
+
+def _parameter_change(first: Net, last: Net) -> float:
+    """``‖θ_last − θ_first‖ / ‖θ_first‖`` over all parameter leaves."""
+    flat = [np.concatenate([np.ravel(np.asarray(a)) for a in jax.tree_util.tree_leaves(n.params)])
+            for n in (first, last)]
+    return float(np.linalg.norm(flat[1] - flat[0]) / np.linalg.norm(flat[0]))
 
 
 def _trace_kernel(k: np.ndarray, o: int) -> KernelArray:
@@ -689,7 +737,7 @@ def _trace_kernel(k: np.ndarray, o: int) -> KernelArray:
     return KernelArray(k, kind="trace", num_outputs=o)
 
 
-# -- JSON and HTML --------------------------------------------------------------------------------
+# -- JSON --------------------------------------------------------------------------------
 def _plain(value):
     """Plain JSON values: arrays to lists, non-finite floats to None."""
     if isinstance(value, dict):
@@ -725,6 +773,8 @@ def _answers_numbers(a: CheckpointAnswers) -> dict:
             "gap": a.gap, "test_gap": a.test_gap, "gap_steps": a.gap_steps,
             "observed_train_mse": a.observed_train_mse,
             "observed_test_mse": a.observed_test_mse,
+            "observed_train_accuracy": a.observed_train_accuracy,
+            "observed_test_accuracy": a.observed_test_accuracy,
         },
         "spectrum": {"eigenvalues": spec.eigenvalues, "effective_rank": spec.effective_rank,
                      "decay_exponent": spec.decay_exponent,
@@ -734,88 +784,9 @@ def _answers_numbers(a: CheckpointAnswers) -> dict:
         "alignment": a.alignment,
         "risk": {"ridges": a.risk.ridges, "loo": a.risk.loo, "gcv": a.risk.gcv,
                  "kare": a.risk.kare, "agree": a.risk.agree, "loo_over_gcv": a.risk.ratio,
-                 "ridge": a.ridge, "chosen_by": "loo", "loo_at_ridge": a.loo,
+                 "ridge": a.ridge, "chosen_by": a.risk.recommended_by, "loo_at_ridge": a.loo,
                  "gcv_at_ridge": a.gcv, "test_mse": a.test_mse_ridge,
                  "test_accuracy": a.test_accuracy_ridge,
-                 "test_mse_by_ridge": a.test_mse_by_ridge},
+                 "test_mse_by_ridge": a.test_mse_by_ridge,
+                 "test_accuracy_by_ridge": a.test_accuracy_by_ridge},
     }
-
-
-def _png(fig) -> str:
-    return base64.b64encode(plots.png(fig, dpi=80)).decode("ascii")
-
-
-def _table(header: Sequence[str], rows) -> str:
-    head = "".join(f"<th>{html.escape(h)}</th>" for h in header)
-    body = "".join("<tr>" + "".join(f"<td>{html.escape(_cell(c))}</td>" for c in row) + "</tr>"
-                   for row in rows)
-    return f"<table><tr>{head}</tr>{body}</table>"
-
-
-def _cell(value) -> str:
-    if value is None:
-        return "—"
-    if isinstance(value, float | np.floating):
-        return f"{float(value):.4g}"
-    return str(value)
-
-
-def _html(r: RunAnalysis) -> str:
-    d = r.drift
-    parts = [
-        "<h1>Training run: kernels at the checkpoints</h1>",
-        f"<p><b>{html.escape(r.verdict)}</b></p>",
-        f"<p>{r.num_train} training examples, {r.num_test} test examples, {r.num_outputs} "
-        f"outputs; kernels in {html.escape(r.dtype)}. Which kernel each answer used: "
-        + html.escape("; ".join(f"{k}: {v}" for k, v in r.kinds.items())) + ".</p>",
-    ]
-    if r.cautions:
-        parts.append("<h2>Cautions</h2><ul>" + "".join(
-            f"<li>{html.escape(c)}</li>" for c in r.cautions) + "</ul>")
-    parts.append(f'<h2>Overview</h2><img src="data:image/png;base64,{_png(r.plot())}">')
-    spread = d.laziness.spread
-    parts.append("<h2>Drift</h2>" + _table(
-        ("step", "relative change", "distance", "alignment", "effective rank", "feature rank"),
-        [(int(s), c, dist, a, e, None if fr is None else f"{fr.rank} of {fr.num_examples}")
-         for s, c, dist, a, e, fr in zip(d.steps, d.relative_change, d.distance_to_initial,
-                                         d.alignment, d.effective_rank, r.feature_ranks)]))
-    parts.append('<img src="data:image/png;base64,' + _png(plots.drift_figure(
-        d.steps, relative_change=d.relative_change, distance=d.distance_to_initial,
-        alignment=d.alignment, threshold=d.threshold,
-        spread=None if spread is None else (spread.relative_change, spread.distance))) + '">')
-    if r.labels is not None:
-        first, last = d.steps[0], d.steps[-1]
-        fig = plots.heatmap_figure({f"step {first}": d.kernels[0], f"step {last}": d.kernels[-1]},
-                                   r.labels, [str(c) for c in range(r.num_outputs)])
-        parts.append("<p>The trace kernel, examples sorted by class:</p>"
-                     f'<img src="data:image/png;base64,{_png(fig)}">')
-    parts.append("<h2>Parameter groups</h2>" + _table(
-        ("group", "relative change", "share of trace, first", "share of trace, last", "moved"),
-        [(g.group, g.relative_change, g.share_first, g.share_last, g.moved) for g in r.groups]))
-    parts.append("<h2>At the chosen checkpoints</h2>" + _table(
-        ("step", "forecast kernel", "forecast train MSE at end", "forecast test MSE at end",
-         "LOO ridge", "LOO", "GCV", "kernel ridge test MSE", "kernel ridge test accuracy"),
-        [(a.step, a.kernel, None if a.train_mse is None else a.train_mse[-1],
-          None if a.test_mse is None else a.test_mse[-1], a.ridge, a.loo, a.gcv,
-          a.test_mse_ridge, a.test_accuracy_ridge) for a in r.checkpoints]))
-    for a in r.checkpoints:
-        if a.observed_test_mse is None:
-            continue
-        at = np.searchsorted(a.forecast.steps, a.gap_steps - a.step)
-        fig = plots.forecast_figure(
-            a.gap_steps, observed_train=a.observed_train_mse, forecast_train=a.train_mse[at],
-            observed_test=a.observed_test_mse, forecast_test=a.test_mse[at], train_gap=a.gap,
-            test_gap=a.test_gap, threshold=r.laziness.gap_threshold)
-        fig.axes[0].set_title(f"Forecast from step {a.step} vs the run")
-        parts.append(f'<img src="data:image/png;base64,{_png(fig)}">')
-    for a in r.checkpoints:
-        if a.test_mse_by_ridge is None:
-            continue
-        fig = plots.risk_figure(a.risk.ridges, gcv=a.risk.gcv, kare=a.risk.kare, loo=a.risk.loo,
-                                heldout=a.test_mse_by_ridge, chosen=a.ridge)
-        parts.append(f"<p>Kernel ridge on the kernel at step {a.step}:</p>"
-                     f'<img src="data:image/png;base64,{_png(fig)}">')
-    style = ("<style>body{font-family:sans-serif;max-width:1000px;margin:auto}"
-             "table{border-collapse:collapse}td,th{border:1px solid #ccc;padding:2px 6px}</style>")
-    return ("<!doctype html><html><head><meta charset='utf-8'><title>ntkcalc: training run"
-            f"</title>{style}</head><body>" + "\n".join(parts) + "</body></html>")
