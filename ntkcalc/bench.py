@@ -5,9 +5,12 @@ hand recipe users write today — ``jax.jit(jax.vmap(jax.jacrev(f)))`` over exam
 einsum — and each ntkcalc method on the same model and inputs, in float32 at matmul precision
 "highest". ``seconds`` is the fastest of several compiled calls (5, 3 or 1 by the first call's
 time), the same rule for every method and the recipe; ``first`` includes tracing and compilation.
+Each ntkcalc row is also set against its *floor*: the plan's FLOP count at the measured matmul
+rate, the fastest its chosen method could run on this machine.
 
 Rows: the MLP 784-512-512-512-10 (0.93M parameters), a CNN with 3 conv layers (0.33M), a
-transformer encoder block on 16 tokens, the dataset-scale rows of `ntkcalc._tiles.bench_scale`
+transformer encoder block on 16 tokens, a CNN on 32×32×3 images (321,290), four encoder blocks
+as an nn.scan over layers, an LSTM over 32 steps, the dataset-scale rows of `ntkcalc._tiles.bench_scale`
 (``--scale``) and the sketched-features rows of `ntkcalc._sketch.bench_sketch` (``--sketch``).
 """
 
@@ -25,6 +28,10 @@ MODELS = {
     "mlp": "MLP 784-512-512-512-10 (relu, 0.93M params)",
     "cnn": "CNN 3×conv3x3 stride 2 (64-128-192) + dense, 28×28×1 (0.33M params)",
     "transformer": "encoder block: embed 1000×64, 4-head attention, LayerNorm, MLP 256, 16 tokens",
+    "cnn32": "CNN 32×32×3: 3×(conv3x3 SAME 32-64-64, relu, avg_pool 2) + dense 256 + 10 (321,290)",
+    "scan-transformer": "4 encoder blocks as one nn.scan over layers: embed 1000×64, 4 heads, "
+                        "MLP 256, 16 tokens",
+    "lstm": "LSTM 64 over 32 steps of 8 features (nn.RNN) + dense 10",
 }
 
 
@@ -65,6 +72,42 @@ def _model(name: str):
                 return nn.Dense(10)(h.mean(axis=1))
 
         module, x = Encoder(), rng.integers(0, 1000, size=(256, 16)).astype(np.int32)
+    elif name == "cnn32":
+        class CNN32(nn.Module):
+            @nn.compact
+            def __call__(self, x):
+                for c in (32, 64, 64):
+                    x = nn.relu(nn.Conv(c, (3, 3), padding="SAME")(x))
+                    x = nn.avg_pool(x, (2, 2), strides=(2, 2))
+                x = nn.relu(nn.Dense(256)(x.reshape(x.shape[0], -1)))
+                return nn.Dense(10)(x)
+
+        module, x = CNN32(), rng.normal(size=(256, 32, 32, 3)).astype(np.float32)
+    elif name == "scan-transformer":
+        class Block(nn.Module):
+            @nn.compact
+            def __call__(self, h, _):
+                h = h + nn.MultiHeadDotProductAttention(num_heads=4)(nn.LayerNorm()(h))
+                h = h + nn.Dense(64)(nn.gelu(nn.Dense(256)(nn.LayerNorm()(h))))
+                return h, None
+
+        class ScanEncoder(nn.Module):
+            @nn.compact
+            def __call__(self, tokens):
+                h = nn.Embed(1000, 64)(tokens)
+                layers = nn.scan(Block, variable_axes={"params": 0},
+                                 split_rngs={"params": True}, length=4)
+                h, _ = layers()(h, None)
+                return nn.Dense(10)(h.mean(axis=1))
+
+        module, x = ScanEncoder(), rng.integers(0, 1000, size=(256, 16)).astype(np.int32)
+    elif name == "lstm":
+        class LSTM(nn.Module):
+            @nn.compact
+            def __call__(self, x):
+                return nn.Dense(10)(nn.RNN(nn.LSTMCell(64))(x)[:, -1])
+
+        module, x = LSTM(), rng.normal(size=(256, 32, 8)).astype(np.float32)
     else:
         raise ValueError(f"unknown benchmark model {name!r}: use one of {sorted(MODELS)}")
     variables = module.init(jax.random.key(0), x[:1])
@@ -124,8 +167,9 @@ def _child(spec: dict) -> dict:
     else:
         plan = ntkcalc.plan(net, x, outputs=spec["outputs"], method=spec["method"],
                             memory=spec.get("memory"))
+        # The floor: the plan's FLOPs at the measured matmul rate, the limit of its method here.
         out.update(planned=plan.method, estimate_s=plan.seconds, flops=plan.flops,
-                   block=plan.block)
+                   block=plan.block, floor_s=plan.flops / machine_rate("float32"))
         first, second, _ = _timed(lambda: ntkcalc.ntk(
             net, x, outputs=spec["outputs"], method=spec["method"], memory=spec.get("memory"),
             progress=False))
@@ -148,6 +192,10 @@ ROWS = [
     ("cnn", 32, "full", ("recipe", "jacobian", "structured", "auto")),
     ("transformer", 32, "trace", ("recipe", "jacobian", "structured", "auto")),
     ("mlp", 1024, "trace", ("structured", "auto")),
+    ("cnn32", 32, "full", ("recipe", "jacobian", "structured", "auto")),
+    ("cnn32", 128, "trace", ("recipe", "structured", "auto")),
+    ("scan-transformer", 64, "trace", ("recipe", "jacobian", "structured", "auto")),
+    ("lstm", 64, "trace", ("recipe", "jacobian", "structured", "auto")),
 ]
 QUICK = [
     ("mlp", 64, "full", ("recipe", "structured", "auto")),
@@ -179,6 +227,8 @@ def jacobian_memory_row(*, log=print) -> dict:
 
 def _format_row(r: dict) -> str:
     extra = f" planned={r['planned']}" if "planned" in r else ""
+    if "floor_s" in r:
+        extra += f" {r['seconds'] / r['floor_s']:.2f}× floor ({r['floor_s']:.3f} s)"
     return (f"{r['model']:<12} N={r['N']:<5} {r['outputs']:<6} {r['method']:<22} "
             f"{r['seconds']:9.3f} s  (first {r['first']:.2f} s)  peak {r['peak_rss_gb']:.2f} GB"
             + extra)
@@ -195,7 +245,7 @@ def summarize(table: list[dict]) -> list[str]:
         if auto is None:
             continue
         parts = [f"{key[0]} N={key[1]} {key[2]}: auto ({auto.get('planned')}) "
-                 f"{auto['seconds']:.3f} s"]
+                 f"{auto['seconds']:.3f} s, {auto['seconds'] / auto['floor_s']:.2f}× its floor"]
         if "recipe" in rows:
             parts.append(f"{rows['recipe']['seconds'] / auto['seconds']:.1f}× faster than the "
                          "recipe")

@@ -14,10 +14,20 @@ kernel contribution costs activations² rather than parameters (see `contract`).
 Rules, per leaf: ``"dense"`` (dot_general), ``"conv"`` (conv_general_dilated, any strides, padding,
 dilation, feature groups), ``"embed"`` (a gather of whole rows, y[t] = E[idx_t]: the lookup is
 one_hot(idx) @ E, so it factors like a dense layer whose input Gram is [idx_t = idx'_s]),
-``"scale"`` (elementwise mul), ``"bias"`` (add), and ``"fallback"`` (anything else: other gathers,
-nonlinear use, control flow, a leaf used as both operands): the Jacobian
-contraction for that leaf only, from the same VJP. A leaf with several uses is structured when
-every use has a rule; its derivative is the sum over uses.
+``"scale"`` (elementwise mul), ``"bias"`` (add, or sub on either side), ``"concat"`` (a leaf
+concatenated with activations, e.g. a class token), and ``"fallback"`` (anything else: other
+gathers, nonlinear use, a leaf used as both operands, a scan carry, a leaf passed into a
+custom_jvp/custom_vjp function, whose custom rule need not be its body's derivative): the
+Jacobian contraction for that leaf only, from the same VJP. A leaf with several uses is
+structured when every use has a rule; its derivative is the sum over uses. The walk enters
+jit/pjit and rematerialization (jax.checkpoint, nn.remat) bodies, and the pass-throughs
+include rev (a flipped kernel), neg and static slices (``wpe[:T]``).
+
+Scans: a leaf closed over by a scan body (an RNN cell's weights) is applied at every step, and
+its derivative is the sum over steps, ``∂f/∂W = Σ_s Σ_t h_s,t ⊗ g_s,t``, so the steps join the
+positions T exactly as the positions of a convolution do. A stacked leaf sliced by the scan (an
+nn.scan over layers) is one layer per step: the steps join the batch dims B, whose weights are
+separate. Probes and captures then carry a leading step axis, sliced per step (`_eval_scan`).
 
 Reference: Novak, Sohl-Dickstein & Schoenholz, "Fast Finite Width Neural Tangent Kernel",
 ICML 2022, arXiv:2206.08720 (structured derivatives).
