@@ -103,7 +103,7 @@ def kind_of(k) -> tuple[str | None, int | None]:
     match its kind — e.g. ``k_full[:, :, 0, 0]`` — counts as unknown.
     """
     kind = getattr(k, "kind", None)
-    if kind is None or np.ndim(k) != KIND_NDIM.get(kind, -1):
+    if kind is None or getattr(k, "ndim", None) != KIND_NDIM.get(kind, -1):
         return None, None
     return kind, getattr(k, "num_outputs", None)
 

@@ -67,6 +67,14 @@ def bad_batch(good: np.ndarray, *, feature_ok=lambda s: s[-1:] == (4,)):
     return st.one_of(bad_shape, _spoiled(good), st.none(), junk)
 
 
+def bad_targets(good: np.ndarray):
+    """Targets that are no targets for ``good``'s examples: not (N,) or (N, O) with O > 0, or
+    spoiled. (A 1-D array of N values is valid targets: one output column.)"""
+    n = good.shape[0]
+    bad_shape, _ = arrays(lambda s: len(s) in (1, 2) and s[0] == n and (len(s) == 1 or s[1] > 0))
+    return st.one_of(bad_shape, _spoiled(good), st.none(), junk)
+
+
 def bad_kernel(good: np.ndarray):
     """Arrays that are no kernel: not (N, N, ...) with N > 0, or spoiled."""
     bad_shape, _ = arrays(lambda s: len(s) >= 2 and s[0] == s[1] and s[0] > 0)
@@ -118,22 +126,22 @@ CASES = {
     "spectrum": (ntkcalc.spectrum, lambda: dict(k=K), {"k": bad_kernel(K)}),
     "ridge_fit": (ntkcalc.ridge_fit, lambda: dict(k_train=K, y_train=Y, ridge=0.1), {
         "k_train": bad_kernel(K),
-        "y_train": bad_batch(Y, feature_ok=lambda s: True),
+        "y_train": bad_targets(Y),
         "ridge": st.one_of(st.floats(max_value=-1e-3), non_finite, junk, st.none()),
     }),
     "alignment": (ntkcalc.alignment, lambda: dict(k=K, y=Y), {
-        "k": bad_kernel(K), "y": bad_batch(Y, feature_ok=lambda s: True)}),
+        "k": bad_kernel(K), "y": bad_targets(Y)}),
     "cka": (ntkcalc.cka, lambda: dict(k1=K, k2=K), {"k1": bad_kernel(K), "k2": bad_kernel(K)}),
     "kernel_distance": (ntkcalc.kernel_distance, lambda: dict(k1=K, k2=K), {
         "k1": bad_kernel(K), "k2": bad_kernel(K)}),
     "task_spectrum": (ntkcalc.task_spectrum, lambda: dict(k=K, y=Y), {
-        "k": bad_kernel(K), "y": bad_batch(Y, feature_ok=lambda s: True)}),
+        "k": bad_kernel(K), "y": bad_targets(Y)}),
     "risk": (ntkcalc.risk, lambda: dict(k_train=K, y_train=Y, ridges=[0.1, 1.0]), {
-        "k_train": bad_kernel(K), "y_train": bad_batch(Y, feature_ok=lambda s: True),
+        "k_train": bad_kernel(K), "y_train": bad_targets(Y),
         "ridges": st.one_of(st.just([]), st.just([-1.0]), st.just([np.nan]), junk)}),
     "forecast": (ntkcalc.forecast, lambda: dict(k_train=K, y_train=Y, f0_train=0 * Y, lr=0.1,
                                                 steps=[0, 10], progress=False), {
-        "k_train": bad_kernel(K), "y_train": bad_batch(Y, feature_ok=lambda s: True),
+        "k_train": bad_kernel(K), "y_train": bad_targets(Y),
         "lr": bad_positive, "steps": st.one_of(st.just([-1]), st.just([1.5]), junk)}),
     "estimate_trace": (ntkcalc.estimate_trace, lambda: dict(k=K, num_queries=3, seed=0), {
         "k": bad_kernel(K), "num_queries": st.one_of(st.integers(max_value=0), junk),
@@ -143,28 +151,13 @@ CASES = {
         "n_test": st.one_of(st.integers(max_value=-1), junk)}),
 }
 
-#: Arguments whose validation still lets some malformed values through to numpy (ragged nested
-#: lists, complex kernels cast with only numpy's ComplexWarning, booleans, objects), owned by the
-#: analysis modules and being fixed there: expected failures, not strict, so a fix lands without
-#: breaking this suite; a case that XPASSes should move into the checked table.
-KNOWN_GAPS = {("spectrum", "k"), ("ridge_fit", "k_train"), ("ridge_fit", "y_train"),
-              ("alignment", "k"), ("alignment", "y"), ("cka", "k1"), ("cka", "k2"),
-              ("kernel_distance", "k1"), ("kernel_distance", "k2"), ("task_spectrum", "k"),
-              ("task_spectrum", "y"), ("risk", "k_train"), ("risk", "y_train"),
-              ("forecast", "k_train"), ("forecast", "y_train"),
-              ("forecast", "lr"),  # lr=True is taken as 1.0
-              ("forecast", "steps"),
-              ("estimate_trace", "seed")}  # a list or an object as seed reaches numpy
-GAP = pytest.mark.xfail(strict=False, reason="analysis input validation: ragged lists, complex "
-                                            "kernels, booleans or objects reach numpy (issue 12)")
 #: Arguments passed by position (as the signatures have them before ``*``).
 POSITIONAL = {"ntk": ("net", "x1"), "ntk_by_layer": ("net", "x1"), "plan": ("net", "x1"),
               "spectrum": ("k",), "ridge_fit": ("k_train", "y_train"), "alignment": ("k", "y"),
               "cka": ("k1", "k2"), "kernel_distance": ("k1", "k2"), "task_spectrum": ("k", "y"),
               "risk": ("k_train", "y_train"), "forecast": ("k_train", "y_train", "f0_train"),
               "estimate_trace": ("k",), "pump_readings": ("n_train", "n_test")}
-PAIRS = [pytest.param(name, arg, id=f"{name}-{arg}",
-                      marks=[GAP] if (name, arg) in KNOWN_GAPS else [])
+PAIRS = [pytest.param(name, arg, id=f"{name}-{arg}")
          for name, (_, _, bad) in CASES.items() for arg in bad]
 
 # Hypothesis's failure report (also for the expected failures above) touches a deprecated

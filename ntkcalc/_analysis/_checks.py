@@ -45,12 +45,31 @@ LabelFormat = Literal["one-hot", "integer"]
 
 
 def finite_array(name: str, a, *, ndim: tuple[int, ...] | None = None) -> np.ndarray:
-    """``a`` as a float64 ndarray with no NaN/Inf, optionally of one of the given ranks."""
-    try:
-        arr = np.asarray(a, dtype=np.float64)
-    except (TypeError, ValueError) as err:
+    """``a`` as a float64 ndarray with no NaN/Inf, optionally of one of the given ranks.
+
+    Refused with a message naming ``name``: anything numpy cannot read as a regular numeric
+    array (ragged nested lists, objects, strings) and complex values, whose imaginary part a
+    cast to float64 would drop silently.
+    """
+    if a is None or isinstance(a, str | bytes | dict):
         raise TypeError(
             f"`{name}` must be a numeric array, got {type(a).__name__}. Pass a numpy array."
+        )
+    try:
+        raw = np.asarray(a)
+        if np.iscomplexobj(raw):
+            raise TypeError(
+                f"`{name}` is complex ({raw.dtype}); kernels, targets and outputs here are real. "
+                f"Pass the real part explicitly (`{name}.real`) if the imaginary part is rounding."
+            )
+        arr = np.asarray(raw, dtype=np.float64)
+    except (TypeError, ValueError) as err:
+        if isinstance(err, TypeError) and str(err).startswith(f"`{name}`"):
+            raise
+        raise TypeError(
+            f"`{name}` must be a numeric array, got {type(a).__name__}"
+            f"{' (ragged or not numeric)' if isinstance(a, list | tuple) else ''}. Pass a regular "
+            "numpy array."
         ) from err
     if ndim is not None and arr.ndim not in ndim:
         want = " or ".join(f"{d}-D" for d in ndim)
@@ -59,6 +78,15 @@ def finite_array(name: str, a, *, ndim: tuple[int, ...] | None = None) -> np.nda
     if bad:
         raise ValueError(NOT_FINITE.format(name=name, count=bad))
     return arr
+
+
+def ndim_of(a) -> int:
+    """``np.ndim(a)``, or -1 when numpy cannot read ``a`` as a regular array (ragged, objects):
+    for dispatching on a shape before `finite_array` names the argument in its refusal."""
+    try:
+        return int(np.ndim(a))
+    except (TypeError, ValueError):
+        return -1
 
 
 def square_kernel(name: str, k) -> np.ndarray:
@@ -117,7 +145,10 @@ def is_label_array(y) -> bool:
     """True for a 1-D integer or boolean array: class labels under the label convention."""
     dtype = getattr(y, "dtype", None)
     if dtype is None:
-        y = np.asarray(y)
+        try:
+            y = np.asarray(y)
+        except (TypeError, ValueError):  # ragged or not numeric: finite_array says so by name
+            return False
         dtype = y.dtype
     return np.ndim(y) == 1 and (np.issubdtype(dtype, np.integer) or dtype == np.bool_)
 
@@ -188,7 +219,9 @@ def nonnegative(name: str, value) -> np.ndarray:
 
 
 def positive(name: str, value) -> float:
-    """A finite scalar > 0 (a learning rate, a size)."""
+    """A finite scalar > 0 (a learning rate, a size); a boolean is no number here."""
+    if isinstance(value, bool | np.bool_):
+        raise TypeError(f"`{name}` must be a number > 0, got {value!r}.")
     arr = finite_array(name, value, ndim=(0,))
     if not arr > 0:
         raise ValueError(NOT_POSITIVE.format(name=name, value=value))
@@ -202,9 +235,20 @@ def positive_int(name: str, value) -> int:
     return int(value)
 
 
+def seed(name: str, value):
+    """A seed for ``numpy.random.default_rng``: None, an integer >= 0 or a ``Generator``."""
+    if value is None or isinstance(value, np.random.Generator):
+        return value
+    if isinstance(value, bool) or not isinstance(value, int | np.integer) or value < 0:
+        raise TypeError(
+            f"`{name}` must be None, an integer >= 0 or a numpy Generator, got {value!r}."
+        )
+    return int(value)
+
+
 def sorted_times(name: str, values, *, integer: bool) -> np.ndarray:
     """A 1-D, non-decreasing array of values >= 0; an int ``S`` means ``0, 1, ..., S``."""
-    if np.ndim(values) == 0 and integer:
+    if ndim_of(values) == 0 and integer:
         if isinstance(values, bool) or not isinstance(values, int | np.integer) or values < 0:
             raise ValueError(
                 f"`{name}` must be a whole number S >= 0 (meaning 0, 1, ..., S) or a sorted 1-D "

@@ -292,7 +292,7 @@ def _per_output_or_full(name: str, k, *, num_outputs: int) -> str:
     with several outputs is refused, since using it as K would be wrong by a factor of about O.
     """
     kind, o = kind_of(k)
-    ndim = np.ndim(k)
+    ndim = _checks.ndim_of(k)
     if kind is not None and o != num_outputs:
         raise ValueError(
             f"`{name}` is {describe(kind, o)}, but the outputs have {num_outputs} column(s): "
@@ -326,12 +326,12 @@ def _per_output_or_full(name: str, k, *, num_outputs: int) -> str:
     return "full"  # other ranks are refused with their shape by the validation that follows
 
 
-def _check_result_size(steps: np.ndarray, *, rows: int, n_out: int, cols: int) -> None:
+def _check_result_size(count: int, *, rows: int, n_out: int, cols: int) -> None:
     """Refuse, naming ``steps``, a request whose kept outputs would not fit in memory."""
-    need = 8 * len(steps) * (2 * rows * n_out + 3 * cols)
+    need = 8 * count * (2 * rows * n_out + 3 * cols)
     if need > MAX_RESULT_BYTES:
         raise ValueError(
-            f"`steps` asks for {len(steps):,} snapshots of {rows:,} × {n_out} outputs, about "
+            f"`steps` asks for {count:,} snapshots of {rows:,} × {n_out} outputs, about "
             f"{need / 2**30:.1f} GiB. Only the requested steps are kept: pass the steps you "
             "want to see as a sorted array, e.g. np.unique(np.geomspace(1, S, 100).astype(int))."
         )
@@ -424,13 +424,16 @@ def forecast(
     if loss not in ("mse", "cross-entropy"):
         raise ValueError(f"`loss` must be 'mse' or 'cross-entropy', got {loss!r}.")
     lr = _checks.positive("lr", lr)
-    steps = _checks.sorted_times("steps", steps, integer=not flow)
     f0 = _checks.finite_array("f0_train", f0_train, ndim=(1, 2))
     n = f0.shape[0]
     f0 = f0.reshape(n, -1)
     n_out = f0.shape[1]
+    if isinstance(steps, int | np.integer) and not isinstance(steps, bool) and steps >= 0:
+        # S means 0, 1, ..., S: refuse a huge S before allocating the list of steps
+        _check_result_size(int(steps) + 1, rows=n, n_out=n_out, cols=n)
+    steps = _checks.sorted_times("steps", steps, integer=not flow)
     kernel_used = _per_output_or_full("k_train", k_train, num_outputs=n_out)
-    kernel_dtype = str(np.asarray(k_train).dtype)
+    kernel_dtype = str(rank.precision_of(k_train))
     kmat, block = _checks.kernel_to_flat("k_train", k_train, num_outputs=n_out)
     kshape = np.shape(k_train)
     if kmat.shape[0] != (n if block else n * n_out):
@@ -472,7 +475,7 @@ def forecast(
                 "y_test", y_test, n=m, kname="k_test_train", kshape=kx_raw.shape)
             _checks.same_outputs("y_test", y_t, want=n_out, ref="`f0_train`")
 
-    _check_result_size(steps, rows=n + (0 if f0_t is None else f0_t.shape[0]),
+    _check_result_size(len(steps), rows=n + (0 if f0_t is None else f0_t.shape[0]),
                        n_out=n_out, cols=kmat.shape[0])
     if loss == "mse":
         cols = kmat.shape[0]

@@ -98,7 +98,7 @@ def estimate_trace(k, *, num_queries: int, seed: int) -> Estimate:
         seed: seed of the random sign vectors (``numpy.random.default_rng``).
     """
     op, m = _operator("k", k), _queries(num_queries)
-    value = _hutchpp(op, m, np.random.default_rng(seed))
+    value = _hutchpp(op, m, np.random.default_rng(_checks.seed("seed", seed)))
     return Estimate(value=value, num_queries=m, matvecs=op.matvecs, quantity="trace")
 
 
@@ -109,7 +109,7 @@ def _frobenius_sq(op: spla.LinearOperator, m: int, rng) -> float:
 def estimate_frobenius(k, *, num_queries: int, seed: int) -> Estimate:
     """``‖K‖_F = √tr(K²)`` by Hutch++ on ``K²`` (2 products with K per query; K symmetric)."""
     op, m = _operator("k", k), _queries(num_queries)
-    value = float(np.sqrt(_frobenius_sq(op, m, np.random.default_rng(seed))))
+    value = float(np.sqrt(_frobenius_sq(op, m, np.random.default_rng(_checks.seed("seed", seed)))))
     return Estimate(value=value, num_queries=m, matvecs=op.matvecs, quantity="frobenius")
 
 
@@ -120,7 +120,7 @@ def estimate_participation_ratio(k, *, num_queries: int, seed: int) -> Estimate:
     participation ratio, not the entropy-based effective rank of Roy & Vetterli.
     """
     op, m = _operator("k", k), _queries(num_queries)
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(_checks.seed("seed", seed))
     trace = _hutchpp(op, m, rng)
     fro_sq = _frobenius_sq(op, m, rng)
     value = trace**2 / fro_sq if fro_sq > 0 else 0.0
@@ -148,6 +148,6 @@ def estimate_alignment(k, y, *, num_queries: int, seed: int, centered: bool = Tr
     if yty == 0:
         raise ValueError("`y` is constant (zero after centering): the alignment is undefined.")
     numerator = float(np.sum(y * np.asarray(a.matmat(y))))
-    fro = np.sqrt(_frobenius_sq(a, m, np.random.default_rng(seed)))
+    fro = np.sqrt(_frobenius_sq(a, m, np.random.default_rng(_checks.seed("seed", seed))))
     value = numerator / (fro * yty) if fro > 0 else float("nan")
     return Estimate(value=float(value), num_queries=m, matvecs=op.matvecs, quantity="alignment")

@@ -101,7 +101,12 @@ def precision_of(data, precision=None) -> np.dtype:
     if precision is not None:
         return _named(precision)
     dtype = getattr(data, "dtype", None)
-    dtype = np.dtype(dtype if dtype is not None else np.asarray(data).dtype)
+    if dtype is None:
+        try:
+            dtype = np.asarray(data).dtype
+        except (TypeError, ValueError):  # not an array: its validation says so by name
+            return np.dtype(np.float64)
+    dtype = np.dtype(dtype)
     if not np.issubdtype(dtype, np.floating) and dtype.kind != "V":
         return np.dtype(np.float64)
     return dtype

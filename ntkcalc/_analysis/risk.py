@@ -42,6 +42,7 @@ from .._kind import describe, kind_of
 from . import _checks
 from ._eig import eigh_descending
 from ._result import Result
+from .rank import precision_of
 from .ridge import indefinite_ridges
 
 #: LOO / GCV ratio (either way) at GCV's chosen ridge above which the estimates disagree.
@@ -116,7 +117,7 @@ def risk(k_train, y_train, *, ridges) -> RiskEstimates:
             + " Leave-one-out and GCV are 0/0 at ridge 0 for an interpolating fit."
         )
     kernel = describe(*kind_of(k_train))
-    kernel_dtype = str(np.asarray(k_train).dtype)
+    kernel_dtype = str(precision_of(k_train))
     k = _checks.square_kernel("k_train", k_train)
     n = k.shape[0]
     y = _checks.targets("y_train", y_train, n=n, kname="k_train", kshape=k.shape)

@@ -189,7 +189,7 @@ def spectrum(
             decay_exponent=decay, decay_fit_range=used, complete=False,
             matvecs=counter.matvecs, kind=kind, num_outputs=num_outputs, precision=dtype.name,
         )
-    if np.ndim(k) == 4:
+    if _checks.ndim_of(k) == 4:
         o = int(np.shape(k)[2])
         k, _ = _checks.kernel_to_flat("k", k, num_outputs=o)
         kind, num_outputs = "full", o
