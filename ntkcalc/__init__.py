@@ -8,7 +8,9 @@ The flow is one-way; each public name below says where it lives:
 - tiles (``_tiles``): blocking, the resumable store, devices and hosts;
 - `ntk`, `ntk_by_layer` (``_kernel``): the kernel as numpy arrays (or a store on disk);
 - analysis (``_analysis``): forecasts, kernel ridge and risk, spectrum, expressivity, alignment,
-  matrix-free operators;
+  the laziness verdict, matrix-free operators;
+- sketched features (``_sketch``): φ with E[φφᵀ] = Θ in linear time, and analyses on them with
+  error bars;
 - workflows (``_workflows``): drift over a training run, your own run end to end
   (`analyse_run`), the demo, the report, the command line.
 """
