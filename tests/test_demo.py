@@ -113,6 +113,9 @@ def test_the_demo_is_the_workflow(demo):
     assert demo.forecast_gap == pytest.approx(float(np.max(first.gap)), rel=1e-15)
     assert demo.relative_change == pytest.approx(float(a.drift.relative_change[-1]), rel=1e-15)
     assert _json(pathlib.Path(demo.out_dir) / "result.json") == json.loads(a.to_json())
+    # lr is half the stability limit 2N/λ_max: λ_max by Lanczos in the demo, by the forecast's
+    # full eigendecomposition (scipy.linalg.eigh) of the same initial kernel here
+    assert demo.lr == pytest.approx(first.forecast.max_stable_lr / 2, rel=1e-9)
 
 
 def test_checkpoints_saved_and_restored(demo):
