@@ -69,6 +69,7 @@ from ._sketch.features import Features as Features
 from ._sketch.features import ntk_features as ntk_features
 from ._tiles.view import RunInfo as RunInfo
 from ._tiles.view import StoredKernel as StoredKernel
+from ._tiles.view import open_kernel as open_kernel
 from ._workflows.data import PumpReadings as PumpReadings
 from ._workflows.data import pump_readings as pump_readings
 from ._workflows.demo import DemoResult as DemoResult

@@ -210,3 +210,15 @@ def check_modes(net: ntkcalc.Net, x1, x2, *, modes=("full", "trace", "diagonal",
                       progress=False)
     assert_close(k12, reduce_mode(reference_full(net, x1, x2, params=params, jit=True),
                                   modes[0]))
+
+
+def save_steps(directory, params_by_step: dict) -> None:
+    """Save ``{step: params}`` as an orbax ``CheckpointManager`` directory, each step's item
+    ``{"params": params}`` (the layout of a flax linen training loop), synchronously."""
+    import orbax.checkpoint as ocp
+
+    options = ocp.CheckpointManagerOptions(max_to_keep=None, enable_async_checkpointing=False)
+    with ocp.CheckpointManager(directory, options=options) as manager:
+        for step, params in params_by_step.items():
+            manager.save(step, args=ocp.args.StandardSave({"params": params}))
+        manager.wait_until_finished()

@@ -6,7 +6,9 @@ Layout of ``<store>/``:
   examples), no compression, fill value NaN so an unwritten tile reads as NaN;
 - ``checksums``: uint64 array (row blocks, column blocks), one chunk per entry; entry (i, j) is
   written only after the tile's chunk(s) and is a BLAKE2b checksum of their bytes (0 = not done);
-- attribute ``"ntkcalc"``: the kernel's fingerprint (see `fingerprint`).
+- attribute ``"ntkcalc"``: the kernel's fingerprint (see `fingerprint`);
+- attribute ``"ntkcalc_source"`` (optional): which checkpoint (path, step) and model produced the
+  kernel, written by ``ntkcalc kernel`` (`record_source`).
 
 For K(X, X) the tile (i, j), i < j, and its mirror (j, i) are both written, so the array on disk
 is the whole kernel and any zarr reader can use it; the checksum covers both. A tile whose
@@ -47,6 +49,7 @@ from .messages import DISK_FULL, NOT_A_STORE, STORE_BUSY, STORE_UNWRITABLE
 logger = logging.getLogger("ntkcalc")
 
 ATTR = "ntkcalc"
+SOURCE_ATTR = "ntkcalc_source"
 LAYOUT = 1
 
 
@@ -344,14 +347,31 @@ class TileStore:
         return files * (chunk + 4096) + 8 + 4096
 
 
-def read_verified(store, *, what: str = "store") -> np.ndarray | None:
-    """The whole kernel in ``store`` after checking every tile's checksum; None when ``store``
-    holds no ntkcalc kernel.
+def record_source(store, source: dict) -> None:
+    """Record which checkpoint and model produced the kernel in ``store``: the JSON-ready dict
+    ``source`` goes into the group attribute ``"ntkcalc_source"`` (see `read_source`).
 
-    A store of `ntkcalc.ntk_by_layer` holds one kernel per parameter group; their sum is the whole
-    kernel (the groups partition the parameters), which is what is returned. Raises ValueError
-    naming ``what`` when the store's metadata is damaged or a tile is missing or fails its
-    checksum (a rerun of the same ``ntk(..., store=...)`` call recomputes those).
+    Keys written by ``ntkcalc kernel``: ``checkpoint`` (absolute path), ``step`` (int or None),
+    ``item``, ``subtree`` and ``model`` (the ``package.module:factory`` spec).
+    """
+    zarr.open_group(store, mode="r+").attrs[SOURCE_ATTR] = dict(source)
+
+
+def read_source(store) -> dict | None:
+    """The provenance `record_source` wrote into ``store``, or None when it records none."""
+    try:
+        value = zarr.open_group(store, mode="r").attrs.get(SOURCE_ATTR)
+    except Exception:  # noqa: BLE001 - absent or foreign: `inspect` says which
+        return None
+    return dict(value) if isinstance(value, dict) else None
+
+
+def open_verified(store, *, what: str = "store") -> tuple[TileStore, dict] | None:
+    """The open store and its fingerprint after checking every tile's checksum; None when
+    ``store`` holds no ntkcalc kernel.
+
+    Raises ValueError naming ``what`` when the store's metadata is damaged or a tile is missing or
+    fails its checksum (a rerun of the same ``ntk(..., store=...)`` call recomputes those).
     """
     from .blocking import tiles
 
@@ -382,4 +402,18 @@ def read_verified(store, *, what: str = "store") -> np.ndarray | None:
             f"{len(every)} tiles are missing or fail their checksum ({failed} fail it). Run the "
             "same `ntk(..., store=...)` call again to compute only those."
         )
+    return ts, fp
+
+
+def read_verified(store, *, what: str = "store") -> np.ndarray | None:
+    """The whole kernel in ``store`` after checking every tile's checksum (`open_verified`);
+    None when ``store`` holds no ntkcalc kernel.
+
+    A store of `ntkcalc.ntk_by_layer` holds one kernel per parameter group; their sum is the whole
+    kernel (the groups partition the parameters), which is what is returned.
+    """
+    opened = open_verified(store, what=what)
+    if opened is None:
+        return None
+    ts = opened[0]
     return np.asarray(ts.kernel[...]).sum(axis=0, dtype=ts.kernel.dtype)

@@ -1,4 +1,4 @@
-"""The ``ntkcalc`` command line: ``demo``, ``kernel``, ``report``, ``bench``.
+"""The ``ntkcalc`` command line: ``demo``, ``kernel``, ``run``, ``drift``, ``report``, ``bench``.
 
 Argument errors print one line on stderr and exit with status 2; errors while running (a
 checkpoint that does not match the model, a memory budget too small, a store that cannot be
@@ -41,7 +41,7 @@ def _subparser(sub, name: str, *, help: str, example: str):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    """The argument parser of ``ntkcalc`` with its four commands."""
+    """The argument parser of ``ntkcalc`` with its six commands."""
     parser = _Parser(
         prog="ntkcalc",
         description="Exact empirical neural tangent kernels of JAX and flax models.",
@@ -49,6 +49,9 @@ def build_parser() -> argparse.ArgumentParser:
                "--key x --store kernel.zarr",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
+    from .. import __version__
+
+    parser.add_argument("--version", action="version", version=f"ntkcalc {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     demo = _subparser(sub, "demo",
@@ -91,10 +94,41 @@ def build_parser() -> argparse.ArgumentParser:
     kernel.add_argument("--x64", action="store_true", help="compute in float64")
     kernel.add_argument("--quiet", action="store_true", help="no progress messages")
 
-    report = _subparser(sub, "report", help="Write the HTML and JSON report of a run directory.",
-                        example="ntkcalc report out/ --out out/report")
-    report.add_argument("source", help="run directory written by 'ntkcalc demo'")
-    report.add_argument("--out", help="directory for the report (default: the source)")
+    run = _subparser(
+        sub, "run", help="Analyse your own training run (drift, laziness, forecasts, test error, "
+        "interpolation check, spectrum, alignment) and write the report.",
+        example="ntkcalc run run/ckpt --model mymodels:make_mlp --data digits.npz --x x --y y "
+                "\\\n    --x-test x_test --y-test y_test --lr 0.1 --out run/analysis",
+    )
+    _run_arguments(run)
+    run.add_argument("--x-test", metavar="KEY", help="test inputs in --data (optional)")
+    run.add_argument("--y-test", metavar="KEY", help="test labels or targets in --data")
+    run.add_argument("--lr", type=float, help="the run's learning rate (for the forecasts; "
+                                              "default: analyse_run's)")
+    run.add_argument("--horizon", type=int, help="steps to forecast (default: the last step)")
+    run.add_argument("--forecast-from", type=int, nargs="+", metavar="STEP",
+                     help="checkpoint steps to forecast from (default: the first)")
+    run.add_argument("--loss", choices=("mse", "cross_entropy"), default="mse")
+    run.add_argument("--full-batch-gd", action="store_true",
+                     help="the run was full-batch gradient descent on --x (forecasts compare)")
+
+    drift = _subparser(
+        sub, "drift", help="The kernel at every checkpoint of a run and how far it moved: "
+        "drift.json, drift.png and the laziness verdict.",
+        example="ntkcalc drift run/ckpt --model mymodels:make_mlp --data digits.npz --out drift/",
+    )
+    _run_arguments(drift)
+    drift.add_argument("--outputs", choices=OUTPUTS, default="trace")
+
+    report = _subparser(sub, "report", help="Write the HTML and JSON report of a kernel store.",
+                        example="ntkcalc report kernel.zarr --labels data.npz:y")
+    report.add_argument("source", help="kernel store written by 'ntkcalc kernel' or "
+                                       "ntk(..., store=...)")
+    report.add_argument("--labels", metavar="FILE[:KEY]",
+                        help="class labels of the store's examples (.npy, or .npz with :KEY); "
+                             "the heat map is sorted by class only with them")
+    report.add_argument("--out", help="directory for the report (default: next to the store, "
+                                      "<store>-report; never inside it)")
 
     bench = _subparser(sub, "bench", help="Time the kernel methods; every argument after "
                        "'bench' goes to the benchmark.",
@@ -103,10 +137,32 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _run_arguments(p) -> None:
+    """The arguments ``run`` and ``drift`` share: a checkpoint directory, a model, data."""
+    p.add_argument("checkpoint", help="orbax CheckpointManager directory of the run")
+    p.add_argument("--model", required=True, metavar="PACKAGE.MODULE:FACTORY",
+                   help="factory() returns the flax linen module or nnx model of the checkpoints")
+    p.add_argument("--data", required=True, metavar="PATH", help="a .npz file with the arrays")
+    p.add_argument("--x", default="x", metavar="KEY", help="training inputs in --data "
+                                                           "(default 'x')")
+    p.add_argument("--y", default="y", metavar="KEY",
+                   help="training labels (integers) or targets in --data (default 'y')")
+    p.add_argument("--steps", type=int, nargs="+", metavar="STEP",
+                   help="checkpoint steps to use (default: all)")
+    p.add_argument("--item", help="item of a checkpoint step holding several")
+    p.add_argument("--subtree", help="'/'-path to the variables inside the checkpoint")
+    p.add_argument("--out", help="directory for the results (default: next to the checkpoint "
+                                 "directory, <checkpoint>-<command>)")
+    p.add_argument("--x64", action="store_true", help="compute in float64")
+    p.add_argument("--quiet", action="store_true", help="no progress bars or messages")
+
+
 # -- helpers --------------------------------------------------------------------------------------
-def _load_array(path: str, key: str | None, *, flag: str) -> np.ndarray:
+def _load_array(path: str, key: str | None, *, flag: str, command: str = "kernel",
+                key_flag: str | None = None) -> np.ndarray:
+    key_flag = key_flag or flag.replace("x", "key")
     if not os.path.isfile(path):
-        raise UsageError(f"ntkcalc kernel: error: {flag} {path!r} does not exist.")
+        raise UsageError(f"ntkcalc {command}: error: {flag} {path!r} does not exist.")
     if path.endswith(".npz"):
         with np.load(path, allow_pickle=False) as data:
             names = sorted(data.files)
@@ -114,21 +170,21 @@ def _load_array(path: str, key: str | None, *, flag: str) -> np.ndarray:
                 key = names[0]
             if key not in names:
                 need = "has no array" if key is not None else "holds several arrays; pass one"
-                raise UsageError(f"ntkcalc kernel: error: {path!r} {need} "
+                raise UsageError(f"ntkcalc {command}: error: {path!r} {need} "
                                  f"{'' if key is None else repr(key) + ' '}(arrays: "
-                                 f"{', '.join(names)}); pick one with {flag.replace('x', 'key')}.")
+                                 f"{', '.join(names)}); pick one with {key_flag}.")
             return data[key]
     if path.endswith(".npy"):
         try:
             return np.load(path, allow_pickle=False)
         except ValueError as err:
-            raise UsageError(f"ntkcalc kernel: error: {flag} {path!r}: {err}") from None
-    raise UsageError(f"ntkcalc kernel: error: {flag} {path!r} must be a .npy or .npz file.")
+            raise UsageError(f"ntkcalc {command}: error: {flag} {path!r}: {err}") from None
+    raise UsageError(f"ntkcalc {command}: error: {flag} {path!r} must be a .npy or .npz file.")
 
 
-def _factory(spec: str):
+def _factory(spec: str, *, command: str = "kernel"):
     if not MODEL_SPEC.match(spec):
-        raise UsageError(f"ntkcalc kernel: error: --model {spec!r} must look like "
+        raise UsageError(f"ntkcalc {command}: error: --model {spec!r} must look like "
                          "package.module:factory.")
     module_name, attr = spec.split(":")
     if os.getcwd() not in sys.path:  # models next to the data, as for `python -m`
@@ -136,14 +192,15 @@ def _factory(spec: str):
     try:
         obj = importlib.import_module(module_name)
     except ImportError as err:
-        raise UsageError(f"ntkcalc kernel: error: --model: cannot import {module_name!r} "
+        raise UsageError(f"ntkcalc {command}: error: --model: cannot import {module_name!r} "
                          f"({err}).") from None
     for part in attr.split("."):
         if not hasattr(obj, part):
-            raise UsageError(f"ntkcalc kernel: error: --model: {module_name!r} has no {attr!r}.")
+            raise UsageError(f"ntkcalc {command}: error: --model: {module_name!r} has no "
+                             f"{attr!r}.")
         obj = getattr(obj, part)
     if not callable(obj):
-        raise UsageError(f"ntkcalc kernel: error: --model: {spec!r} is not callable.")
+        raise UsageError(f"ntkcalc {command}: error: --model: {spec!r} is not callable.")
     return obj
 
 
@@ -193,11 +250,101 @@ def _kernel(args) -> int:
             memory=args.memory, **extra)
     seconds = time.perf_counter() - start
     if "store" in extra:
+        from .._tiles.store import record_source
+
+        record_source(args.store, _provenance(args))
         print(f"kernel {tuple(k.shape)} written to the store {args.store} in {seconds:.1f} s")
     else:
         np.save(args.store, np.asarray(k))
         print(f"kernel {tuple(np.shape(k))} written with numpy.save to {args.store} in "
               f"{seconds:.1f} s (this installation has no resumable kernel store)")
+    return 0
+
+
+def _provenance(args) -> dict:
+    """Which checkpoint (absolute path, step) and model produced a kernel, for its store."""
+    from .._adapters.checkpoint import checkpoint_steps
+
+    step = args.step
+    if step is None and os.path.isdir(args.checkpoint):
+        try:
+            steps = checkpoint_steps(args.checkpoint)
+        except (ValueError, OSError):  # a single checkpoint, not a CheckpointManager directory
+            steps = ()
+        step = max(steps) if steps else None
+    return {"checkpoint": os.path.abspath(args.checkpoint), "step": step, "item": args.item,
+            "subtree": args.subtree, "model": args.model}
+
+
+def _run_inputs(args, command: str) -> tuple[dict, str]:
+    """The keyword arguments ``analyse_run`` and ``drift`` share, and the output directory."""
+    if not os.path.isdir(args.checkpoint):
+        raise UsageError(f"ntkcalc {command}: error: checkpoint directory {args.checkpoint!r} "
+                         "does not exist or is not a directory.")
+    if not args.data.endswith(".npz"):
+        raise UsageError(f"ntkcalc {command}: error: --data {args.data!r} must be a .npz file "
+                         "holding the arrays named by --x, --y, ...")
+    factory = _factory(args.model, command=command)
+    x = _load_array(args.data, args.x, flag="--data", command=command, key_flag="--x")
+    y = _load_array(args.data, args.y, flag="--data", command=command, key_flag="--y")
+    if len(y) != len(x):
+        raise UsageError(f"ntkcalc {command}: error: --y {args.y!r} has {len(y)} rows but --x "
+                         f"{args.x!r} has {len(x)}; they must be the same examples.")
+    if args.x64:
+        import jax
+
+        jax.config.update("jax_enable_x64", True)
+    from flax import nnx
+
+    model = factory()
+    kwargs = {"module": model, "item": args.item, "subtree": args.subtree, "steps": args.steps,
+              "progress": not args.quiet}
+    if not isinstance(model, nnx.Module):
+        kwargs["example"] = x[:1]
+    out = args.out or f"{os.path.abspath(args.checkpoint).rstrip(os.sep)}-{command}"
+    return {"x": x, "y": y, **kwargs}, out
+
+
+def _run(args) -> int:
+    from .study import analyse_run
+
+    shared, out = _run_inputs(args, "run")
+    x, y = shared.pop("x"), shared.pop("y")
+    if (args.x_test is None) != (args.y_test is None):
+        raise UsageError("ntkcalc run: error: --x-test and --y-test go together; pass both or "
+                         "neither.")
+    test = {}
+    if args.x_test is not None:
+        test = {"x_test": _load_array(args.data, args.x_test, flag="--data", command="run",
+                                      key_flag="--x-test"),
+                "y_test": _load_array(args.data, args.y_test, flag="--data", command="run",
+                                      key_flag="--y-test")}
+    options = {k: v for k, v in (("lr", args.lr), ("horizon", args.horizon),
+                                 ("forecast_from", args.forecast_from)) if v is not None}
+    _say(args.quiet, f"analysing {args.checkpoint} on {len(x)} training examples")
+    result = analyse_run(args.checkpoint, x, y, **shared, **test, **options, loss=args.loss,
+                         full_batch_gd=args.full_batch_gd)
+    html, data = result.write(out)
+    print(result.verdict)
+    print(f"report: {html}\ndata: {data}\nresult: {os.path.join(out, 'result.json')}")
+    return 0
+
+
+def _drift(args) -> int:
+    from .drift import drift
+
+    shared, out = _run_inputs(args, "drift")
+    x, y = shared.pop("x"), shared.pop("y")
+    result = drift(args.checkpoint, x, y, outputs=args.outputs, **shared)
+    if os.path.exists(out) and not os.path.isdir(out):
+        raise UsageError(f"ntkcalc drift: error: --out {out!r} is a file; pass a directory.")
+    os.makedirs(out, exist_ok=True)
+    table, figure = os.path.join(out, "drift.json"), os.path.join(out, "drift.png")
+    with open(table, "w", encoding="utf-8") as fh:
+        fh.write(result.to_json(indent=1))
+    result.plot().figure.savefig(figure, dpi=110)
+    print(result.verdict)
+    print(f"table: {table}\nfigure: {figure}")
     return 0
 
 
@@ -221,7 +368,28 @@ def _demo(args) -> int:
 
 def _report(args) -> int:
     write_report = _optional("report", "ntkcalc._workflows.report", "write_report")
-    html, data = write_report(args.source, out=args.out)
+    source = os.path.abspath(args.source).rstrip(os.sep)
+    out = args.out or f"{source}-report"
+    if os.path.commonpath([source, os.path.abspath(out)]) == source:
+        raise UsageError(f"ntkcalc report: error: --out {args.out!r} is inside the store "
+                         f"{args.source!r} (zarr would find foreign files there); pass a "
+                         "directory outside it.")
+    extra = {}
+    if args.labels is not None:
+        if "labels" not in inspect.signature(write_report).parameters:
+            raise UsageError(MISSING_PART.format(
+                command="report", what="--labels (write_report(labels=...))",
+                err="this write_report takes no labels"))
+        path, _, key = args.labels.partition(":")
+        extra["labels"] = _load_array(path, key or None, flag="--labels", command="report",
+                                      key_flag="--labels FILE:KEY")
+    html, data = write_report(args.source, out=out, **extra)
+    from .._tiles.store import read_source
+
+    made = read_source(args.source)
+    if made is not None:
+        print(f"kernel of checkpoint {made.get('checkpoint')} step {made.get('step')}, model "
+              f"{made.get('model')}")
     print(f"report: {html}\ndata: {data}")
     return 0
 
@@ -231,7 +399,8 @@ def _bench(args) -> int:
     return int(bench(args.args) or 0)
 
 
-COMMANDS = {"demo": _demo, "kernel": _kernel, "report": _report, "bench": _bench}
+COMMANDS = {"demo": _demo, "kernel": _kernel, "run": _run, "drift": _drift, "report": _report,
+            "bench": _bench}
 
 
 def main(argv: list[str] | None = None) -> int:
