@@ -157,6 +157,7 @@ def forecast_figure(steps, *, observed_train, forecast_train, train_gap, thresho
     gap.axhline(threshold, color=REFERENCE, linewidth=1.0, linestyle=":",
                 label=f"threshold {threshold:.0%} (train)")
     gap.set_xscale("symlog", linthresh=1)
+    gap.set_xlim(left=steps[0])  # no negative steps on the symlog axis
     _label(gap, "training step", f"‖f_obs − f_lin‖ / ‖f_{start} − y‖",
            "Outputs: gap to the forecast", legend=True)
     return fig
