@@ -341,6 +341,8 @@ def _analysis_summary(a, desc, spec, fc, rk, ranks, cautions) -> list[str]:
     elif not fc["compared"]:
         forecast = (f"Forecast from the kernel at step {fc['from_step']} (not compared with the "
                     f"run), in {plots.MSE_LABEL}: final train {fc['forecast_train_mse'][-1]:.4f}")
+        if fc["forecast_test_mse"] is not None:
+            forecast += f", test {fc['forecast_test_mse'][-1]:.4f}"
     else:
         forecast = (f"Forecast from the kernel at step {fc['from_step']} vs the run, in "
                     f"{plots.MSE_LABEL}: final train {fc['observed_train_mse'][-1]:.4f} observed "
