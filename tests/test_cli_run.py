@@ -195,3 +195,13 @@ def test_run_and_drift_argument_errors_are_one_line(run, cli):
     ]:
         status, _, err = cli(*argv)
         assert status == 2 and words in err and len(err.strip().splitlines()) == 1, err
+
+
+def test_a_checkpoint_of_another_model_is_one_line_with_status_1(run, cli):
+    # test_study's MLP has 64 hidden units, the checkpoints 16: a runtime error, no traceback
+    tmp = run[0]
+    for command in ("run", "drift"):
+        status, _, err = cli(command, f"{tmp}/ckpt", "--model", "test_study:_Mlp", "--data",
+                             f"{tmp}/digits.npz", "--out", f"{tmp}/other", "--quiet")
+        assert status == 1 and len(err.strip().splitlines()) == 1, err
+        assert err.startswith("ntkcalc: error:") and "Traceback" not in err
