@@ -122,6 +122,11 @@ def test_run_writes_the_report_with_independently_checked_numbers(run, cli):
     _check_table(result["drift"]["table"], kernels, data["y"])
     assert stdout.splitlines()[0] == result["verdict"]
     assert os.path.isfile(f"{out}/report.html") and f"{out}/report.html" in stdout
+    with open(f"{out}/report.html", encoding="utf-8") as fh:
+        page = fh.read()
+    # the report says which checkpoints, model and data it came from
+    assert os.path.abspath(f"{tmp}/ckpt") in page and "cli_digits_models:Mlp" in page
+    assert "digits.npz" in page
 
 
 def test_drift_writes_table_figure_and_verdict(run, cli):

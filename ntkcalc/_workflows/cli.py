@@ -324,7 +324,17 @@ def _run(args) -> int:
     _say(args.quiet, f"analysing {args.checkpoint} on {len(x)} training examples")
     result = analyse_run(args.checkpoint, x, y, **shared, **test, **options, loss=args.loss,
                          full_batch_gd=args.full_batch_gd)
-    html, data = result.write(out)
+    from .report import RunDescription
+
+    what = f"{len(x)} training examples ({args.data}: {args.x}, {args.y})" + (
+        "" if not test else f", {len(test['x_test'])} test ({args.x_test}, {args.y_test})")
+    description = RunDescription(
+        title=f"training run {args.checkpoint}", data=what,
+        model=f"{args.model} ({type(shared['module']).__name__}, {result.num_params:,} "
+              "parameters)",
+        details=(("checkpoints", os.path.abspath(args.checkpoint)),
+                 ("steps", ", ".join(str(int(s)) for s in result.steps))))
+    html, data = result.write(out, description=description)
     print(result.verdict)
     print(f"report: {html}\ndata: {data}\nresult: {os.path.join(out, 'result.json')}")
     return 0
