@@ -259,6 +259,14 @@ def test_kernel_store_gets_spectrum_and_heatmap(tmp_path):
                                np.linalg.eigvalsh(k)[::-1], rtol=1e-10, atol=1e-12)
     assert all(math.isfinite(v) for v in numbers_in(doc))
     assert ("ill-conditioned" in " ".join(doc["cautions"])) == (np.linalg.cond(k) > 1e12)
+    # with class labels the heat map is sorted by class; block means against numpy slices
+    labels = np.repeat([1, 0], 6)
+    doc = json.loads(_text(write_report(store, out=tmp_path / "sorted", labels=labels)[1]))
+    means = np.asarray(doc["sections"]["heatmap"]["block_means"]["kernel"])
+    assert means[0, 1] == pytest.approx(k[6:, :6].mean(), rel=1e-12)
+    assert doc["sections"]["heatmap"]["class_counts"] == [6, 6]
+    with pytest.raises(ValueError, match="`labels`"):
+        write_report(store, out=tmp_path / "bad", labels=np.zeros(5, int))
 
 
 def _shown_numbers(text: str):

@@ -96,7 +96,8 @@ def _run(tmp: str):
                          recorded_train=np.stack([f for f, _ in seen]),
                          recorded_test=np.stack([ft for _, ft in seen]))
     html_path, json_path = result.write(f"{tmp}/report")
-    with open(json_path, encoding="utf-8") as fh:
+    assert json_path == f"{tmp}/report/report.json"
+    with open(f"{tmp}/report/result.json", encoding="utf-8") as fh:
         report = json.load(fh)
     net = ntkcalc.Net.from_linen(model, variables)
     hand = {s: net.replace(params=kept[s]) for s in SAVED}  # built by hand, not from disk

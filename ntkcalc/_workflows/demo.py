@@ -242,8 +242,7 @@ def run_demo(out_dir, *, scale: Scale = "full", progress: bool = True) -> DemoRe
     with jax.enable_x64(True):
         analysis, description = _run(path, _SETTINGS[scale], progress=progress)
     _say(progress, "report")
-    html, _ = analysis.write(path, description=description)
-    report_json = os.path.join(os.path.dirname(html), "report.json")
+    html, report_json = analysis.write(path, description=description)
     with open(report_json, encoding="utf-8") as fh:
         report = json.load(fh)
     seconds = time.perf_counter() - start

@@ -32,7 +32,7 @@ import os
 import numpy as np
 
 from .. import __version__
-from .._analysis import spectrum
+from .._analysis import _checks, spectrum
 from .._analysis._checks import COND_WARN
 from .._analysis._result import Result
 from . import plots
@@ -102,7 +102,7 @@ def _load_store(path: str) -> np.ndarray | None:
     return np.einsum("ijaa->ij", k) if k.ndim == 4 else k
 
 
-def _store_sections(path: str, k: np.ndarray) -> list[_Section]:
+def _store_sections(path: str, k: np.ndarray, labels) -> list[_Section]:
     spec = spectrum(k)
     cautions = _numeric_cautions(spec, str(k.dtype))
     summary = [
@@ -117,8 +117,24 @@ def _store_sections(path: str, k: np.ndarray) -> list[_Section]:
                  items=tuple(cautions)),
         _spectrum_section(spec, ""),
         _heatmap_section({"kernel": k}, np.zeros(k.shape[0], np.int64), ["all examples"],
-                         "The stored kernel, in the stored order of examples."),
+                         "The stored kernel, in the stored order of examples.")
+        if labels is None else _heatmap_section(
+            {"kernel": k}, labels, [str(c) for c in range(int(labels.max()) + 1)],
+            "The stored kernel, examples grouped by the given class labels. The table gives the "
+            "mean kernel value of each pair of classes."),
     ]
+
+
+def _store_labels(labels, n: int) -> np.ndarray | None:
+    """``labels`` validated as (n,) non-negative integer classes of the store's examples."""
+    if labels is None:
+        return None
+    arr = np.asarray(labels)
+    if not _checks.is_label_array(arr) or arr.shape != (n,) or np.any(arr < 0):
+        raise ValueError(
+            f"`labels` must be ({n},) non-negative integer classes, one per example of the "
+            f"store, got {arr.dtype} of shape {arr.shape}.")
+    return arr.astype(np.int64)
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
@@ -159,8 +175,8 @@ class RunDescription(Result):
                 f"`details` must be a tuple of (label, value) pairs of str, got {rows!r}.")
 
 
-def _load(source) -> tuple[str, str, list[_Section]]:
-    """Path, title and report sections of a kernel store."""
+def _load(source, labels) -> tuple[str, str, list[_Section]]:
+    """Path, title and report sections of a kernel store (examples grouped by ``labels``)."""
     if not isinstance(source, str | os.PathLike):
         raise TypeError(
             "`source` must be a `RunAnalysis` (from `analyse_run`) or a kernel store path (str "
@@ -169,7 +185,7 @@ def _load(source) -> tuple[str, str, list[_Section]]:
     path = os.path.abspath(os.fspath(source))
     k = _load_store(path) if os.path.isdir(path) else None
     if k is not None:
-        return path, "kernel store", _store_sections(path, k)
+        return path, "kernel store", _store_sections(path, k, _store_labels(labels, k.shape[0]))
     if os.path.isfile(os.path.join(path, RESULT)):
         raise ValueError(
             f"`source`={path!r} is a run directory: its report was written with it "
@@ -601,8 +617,8 @@ def _render(section: _Section) -> str:
     return "\n".join(parts)
 
 
-def write_report(source, *, out=None, description: RunDescription | None = None
-                 ) -> tuple[str, str]:
+def write_report(source, *, out=None, description: RunDescription | None = None,
+                 labels=None) -> tuple[str, str]:
     """Write ``report.html`` and ``report.json`` for a run or a kernel store.
 
     Args:
@@ -612,6 +628,9 @@ def write_report(source, *, out=None, description: RunDescription | None = None
             store's own directory.
         description: for a `RunAnalysis`, a `RunDescription` of the data, model and training
             (default: a generic one).
+        labels: for a kernel store, (N,) integer classes of its examples: the heat map is then
+            sorted by class with the mean kernel of each pair of classes (a `RunAnalysis` knows
+            its labels).
 
     Returns:
         ``(html_path, json_path)``, absolute paths.
@@ -624,12 +643,14 @@ def write_report(source, *, out=None, description: RunDescription | None = None
     if isinstance(source, RunAnalysis):
         if out is None:
             raise ValueError("`out` is required for a RunAnalysis: the directory to write into.")
+        if labels is not None:
+            raise ValueError("`labels` are for a kernel store; a RunAnalysis has its own.")
         desc = RunDescription() if description is None else description
         path, what, sections = "RunAnalysis", desc.title, _analysis_sections(source, desc)
     else:
         if description is not None:
             raise ValueError("`description` describes a RunAnalysis; a kernel store has none.")
-        path, what, sections = _load(source)
+        path, what, sections = _load(source, labels)
     target = path if out is None else os.path.abspath(os.fspath(out))
     if os.path.exists(target) and not os.path.isdir(target):
         raise ValueError(

@@ -309,13 +309,13 @@ class RunAnalysis(Result):
                 cannot say), or None.
 
         Returns:
-            ``(html_path, json_path)``: ``report.html`` and ``result.json``.
+            ``(html_path, json_path)``: ``report.html`` and ``report.json``, as `write_report`
+            returns them; ``result.json`` is beside them.
         """
-        from .report import write_report  # the report renders this result
+        from .report import RESULT, write_report  # the report renders this result
 
-        html_path, _ = write_report(self, out=directory, description=description)
-        json_path = os.path.join(os.path.dirname(html_path), "result.json")
-        with open(json_path, "w", encoding="utf-8") as fh:
+        html_path, json_path = write_report(self, out=directory, description=description)
+        with open(os.path.join(os.path.dirname(html_path), RESULT), "w", encoding="utf-8") as fh:
             fh.write(self.to_json(indent=1))
         return html_path, json_path
 
