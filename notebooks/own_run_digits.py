@@ -144,7 +144,8 @@ for caution in result.cautions:
 # forecast). When it reads *lazy*, the forecast from initialization and the kernel-ridge test
 # error are answers about this network; when it does not, use the kernels of the later
 # checkpoints (the forecast from a later step) instead. `result.write("report")` writes the same
-# as `report.html` and `result.json`.
+# as `report.html`, with every number it shows in `report.json` and the whole result in
+# `result.json`.
 
 # %%
 html_path, json_path = result.write(os.path.join(tempfile.mkdtemp(), "report"))
