@@ -173,6 +173,16 @@ def test_kernel_store_records_provenance_and_loads_back(run, cli):
                          f"{tmp}/labelled")
     if "labels" in inspect.signature(ntkcalc.write_report).parameters:
         assert status == 0, err
+        with open(f"{tmp}/labelled/report.json", encoding="utf-8") as fh:
+            heat = json.load(fh)["sections"]["heatmap"]
+        # mean kernel entry of each pair of classes, by its definition, in numpy
+        onehot = np.eye(10)[data["labels"]]
+        counts = onehot.sum(axis=0)
+        k = kernels[SAVED[-1]]
+        assert heat["class_counts"] == np.bincount(data["labels"]).tolist()
+        (means,) = heat["block_means"].values()
+        assert_close(np.array(means), onehot.T @ k @ onehot / np.outer(counts, counts),
+                     rtol=1e-10)
     else:  # this write_report cannot sort by class: said in one line, nothing written
         assert status == 2 and "--labels" in err and len(err.strip().splitlines()) == 1
         assert not os.path.exists(f"{tmp}/labelled")
