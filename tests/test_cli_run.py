@@ -188,6 +188,18 @@ def test_kernel_store_records_provenance_and_loads_back(run, cli):
         assert not os.path.exists(f"{tmp}/labelled")
 
 
+def test_loss_choices_are_analyse_runs():
+    from typing import get_args
+
+    from ntkcalc._workflows.cli import build_parser
+    from ntkcalc._workflows.study import Loss
+
+    for loss in get_args(Loss):
+        args = build_parser().parse_args(["run", "c", "--model", "m:f", "--data", "d.npz",
+                                          "--loss", loss])
+        assert args.loss == loss
+
+
 def test_version(capsys):
     assert main(["--version"]) == 0
     assert capsys.readouterr().out.strip() == f"ntkcalc {ntkcalc.__version__}"

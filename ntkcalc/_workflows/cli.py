@@ -15,6 +15,7 @@ import os
 import re
 import sys
 import time
+from typing import get_args
 
 import numpy as np
 
@@ -50,6 +51,7 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     from .. import __version__
+    from .study import Loss
 
     parser.add_argument("--version", action="version", version=f"ntkcalc {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
@@ -108,7 +110,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--horizon", type=int, help="steps to forecast (default: the last step)")
     run.add_argument("--forecast-from", type=int, nargs="+", metavar="STEP",
                      help="checkpoint steps to forecast from (default: the first)")
-    run.add_argument("--loss", choices=("mse", "cross_entropy"), default="mse")
+    run.add_argument("--loss", choices=get_args(Loss), default="mse",
+                     help="the run's training loss (default: mse)")
     run.add_argument("--full-batch-gd", action="store_true",
                      help="the run was full-batch gradient descent on --x (forecasts compare)")
 
