@@ -112,9 +112,10 @@ def describe(kind: str | None, num_outputs: int | None) -> str:
     """A short phrase naming a kernel kind and the call that makes it."""
     if kind is None:
         return "a plain array of unknown kind"
+    over = "" if num_outputs is None else f" over {num_outputs} output(s)"
     if kind == "per-output":
-        return f"the per-output kernel (K of Θ = K ⊗ I_{num_outputs})"
-    return f"the {kind!r} kernel over {num_outputs} output(s) (ntkcalc.ntk(..., outputs={kind!r}))"
+        return f"the per-output kernel (K of Θ = K ⊗ I_{num_outputs or 'O'})"
+    return f"the {kind!r} kernel{over} (ntkcalc.ntk(..., outputs={kind!r}))"
 
 
 def per_output_kernel(k, *, num_outputs: int | None = None) -> KernelArray:
@@ -152,7 +153,14 @@ def per_output_kernel(k, *, num_outputs: int | None = None) -> KernelArray:
             )
         return KernelArray(arr, kind="per-output", num_outputs=num_outputs,
                            note="given as per-output")
-    if num_outputs is not None and num_outputs != o:
+    if o is None:  # e.g. a stored kernel reopened from disk: the store knows its kind, not O
+        if num_outputs is None:
+            raise ValueError(
+                f"`k` is {describe(kind, o)} whose number of outputs O is not recorded: pass "
+                "`num_outputs=O`, the model's number of outputs."
+            )
+        o = int(num_outputs)
+    elif num_outputs is not None and num_outputs != o:
         raise ValueError(
             f"`num_outputs`={num_outputs} but `k` is {describe(kind, o)}: leave it out."
         )

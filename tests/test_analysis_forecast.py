@@ -343,3 +343,20 @@ def test_huge_steps_are_refused_and_long_paths_keep_only_requested_steps(problem
     fc = forecast(p["k"], p["labels"], p["f0"], lr=0.01, steps=np.array([0, 2000]),
                   loss="cross-entropy", progress=False)
     assert fc.train_outputs.shape == (2, 12, 2)
+
+
+def test_kernel_of_known_kind_but_unknown_outputs():
+    # A stored trace kernel reopened from disk knows its kind but not O: per_output_kernel asks
+    # for O, and forecast's refusal names the kind without inventing an O.
+    import ntkcalc
+    from ntkcalc._kind import KernelArray
+
+    k = np.eye(3) * 4.0
+    tagged = KernelArray(k, kind="trace", num_outputs=4)
+    tagged.num_outputs = None  # as a reopened store view has it
+    with pytest.raises(ValueError, match="num_outputs=O"):
+        ntkcalc.per_output_kernel(tagged)
+    per = ntkcalc.per_output_kernel(tagged, num_outputs=4)
+    np.testing.assert_allclose(per, np.eye(3))
+    with pytest.raises(ValueError, match=r"the 'trace' kernel \(ntkcalc.ntk"):
+        forecast(tagged, np.array([0, 1, 2]), np.zeros((3, 4)), lr=0.1, steps=2)

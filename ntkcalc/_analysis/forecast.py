@@ -293,7 +293,7 @@ def _per_output_or_full(name: str, k, *, num_outputs: int) -> str:
     """
     kind, o = kind_of(k)
     ndim = _checks.ndim_of(k)
-    if kind is not None and o != num_outputs:
+    if kind is not None and o is not None and o != num_outputs:
         raise ValueError(
             f"`{name}` is {describe(kind, o)}, but the outputs have {num_outputs} column(s): "
             "the kernel and the outputs must come from the same model."
