@@ -15,7 +15,7 @@ The flow is one-way; each public name below says where it lives:
   (`analyse_run`), the demo, the report, the command line.
 """
 
-__version__ = "0.1.0"
+from ._version import __version__ as __version__
 
 from ._adapters.checkpoint import checkpoint_steps as checkpoint_steps
 from ._adapters.checkpoint import load_checkpoint as load_checkpoint

@@ -50,7 +50,7 @@ def build_parser() -> argparse.ArgumentParser:
                "--key x --store kernel.zarr",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    from .. import __version__
+    from .._version import __version__
     from .study import Loss
 
     parser.add_argument("--version", action="version", version=f"ntkcalc {__version__}")

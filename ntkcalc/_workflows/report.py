@@ -31,7 +31,7 @@ import os
 
 import numpy as np
 
-from .. import __version__
+from .._version import __version__
 from .._analysis import _checks, spectrum
 from .._analysis._checks import COND_WARN
 from .._analysis._result import Result
