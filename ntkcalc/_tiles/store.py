@@ -38,6 +38,7 @@ import logging
 import math
 import os
 import shutil
+import threading
 
 import numpy as np
 import zarr
@@ -67,7 +68,9 @@ def check_writable(store, *, tag: str = "") -> None:
     if not _is_local(store):
         return  # remote stores and store objects report errors when the group is created
     path = os.fspath(store)
-    probe = os.path.join(path, f".ntkcalc-write-test-{os.getpid()}{tag}")
+    # one name per process *and* thread: two calls on one store at once must not remove each
+    # other's probe (which read as "not writable")
+    probe = os.path.join(path, f".ntkcalc-write-test-{os.getpid()}-{threading.get_ident()}{tag}")
     try:
         os.makedirs(path, exist_ok=True)
         with open(probe, "wb") as f:
