@@ -4,7 +4,8 @@ The flow is one-way; each public name below says where it lives:
 
 - model → `Net` (``_adapters``): wrap a JAX function, a flax linen or nnx model, an equinox
   module, a haiku transform, a checkpoint; pick the outputs to study;
-- `plan` (``_engine``): which method per parameter leaf, tile sizes, estimated cost;
+- `plan` (``_engine``): which method per parameter leaf, tile sizes, devices, estimated cost at
+  this machine's `Rates`; ``ntk(..., plan=p)`` runs exactly ``p``;
 - tiles (``_tiles``): blocking, the resumable store, devices and hosts;
 - `ntk`, `ntk_by_layer` (``_kernel``): the kernel as numpy arrays (or a store on disk);
 - analysis (``_analysis``): forecasts, kernel ridge and risk, spectrum, expressivity, alignment,
@@ -55,6 +56,8 @@ from ._analysis.spectrum import participation_ratio as participation_ratio
 from ._analysis.spectrum import spectrum as spectrum
 from ._engine.planner import Plan as Plan
 from ._engine.planner import plan as plan
+from ._engine.rates import Rates as Rates
+from ._engine.rates import measure_rates as measure_rates
 from ._kernel import ntk as ntk
 from ._kernel import ntk_by_layer as ntk_by_layer
 from ._kind import KernelArray as KernelArray

@@ -16,10 +16,12 @@ from ._tiles.drive import compute
 
 _SCALE_DOC = """\
         memory: budget for the computation's working memory (bytes or e.g. ``"2GB"``; default
-            half the memory available now). Tiles are planned by estimate to fit it together
-            with the in-memory result; when the result alone does not fit, the error says to
-            pass ``store``. Not a hard limit on the process: the JAX runtime (≈ 0.4 GB on CPU)
-            comes on top and the estimate can be low at small budgets (docs/scale.md).
+            half the memory available now: host RAM on CPU, the device's own free memory on an
+            accelerator). Tiles are planned by estimate to fit it together with the in-memory
+            result (on CPU; on an accelerator the result is held on the host); when the result
+            alone does not fit, the error says to pass ``store``; `ntkcalc.plan` shows the plan.
+            Not a hard limit on the process: the JAX runtime (≈ 0.4 GB on CPU) comes on top
+            and the estimate can be low at small budgets (docs/scale.md).
         store: None (kernel in memory), or a directory path / URL / zarr store where the kernel
             is written tile by tile as a zarr v3 array. Then a read-only `StoredKernel` view is
             returned (``np.asarray(view)`` loads it) and a call repeated with the same arguments
@@ -42,7 +44,11 @@ _SCALE_DOC = """\
             small eigenvalues, ranks and ill-conditioned solves (float32 keeps about 7 digits;
             docs/cautions.md). ``"float32"`` computes in float32 even when x64 is on. A model
             that casts to a fixed dtype inside (e.g. ``nn.Dense(..., dtype=jnp.float32)``)
-            still rounds there."""
+            still rounds there.
+        plan: a `Plan` from `ntkcalc.plan` for this request (same net call, input shapes,
+            dtype, outputs, params and groups; parameter values may differ), run exactly: its
+            method, tiles, per-leaf representations and devices. ``memory``, ``method``,
+            ``store`` and ``devices`` may be left out; given, they must agree with it."""
 
 Precision = Literal["float32", "float64"]
 PRECISIONS = ("float32", "float64")
@@ -70,6 +76,7 @@ def ntk(
     devices=None,
     spot_check: int = 0,
     dtype: Precision | None = None,
+    plan=None,
 ):
     r"""The empirical neural tangent kernel Θ(x1, x2) = J(x1) J(x2)ᵀ of ``net`` at its parameters.
 
@@ -100,8 +107,9 @@ def ntk(
     """
     with precision_scope(dtype):
         req = prepare(net, x1, x2, outputs=outputs, method=method, params=params)
-        kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
-                             progress=progress, devices=devices, spot_check=spot_check)
+        kernels, _, _ = compute(req, outputs=outputs, memory=memory, method=method,
+                                store=store, progress=progress, devices=devices,
+                                spot_check=spot_check, plan=plan)
     return _tagged(kernels[0], outputs, req.num_outputs)
 
 
@@ -120,6 +128,7 @@ def ntk_by_layer(
     spot_check: int = 0,
     depth: int = 1,
     dtype: Precision | None = None,
+    plan=None,
 ) -> dict[str, np.ndarray]:
     """The kernel split by top-level parameter group: ``{group name: kernel}``.
 
@@ -128,13 +137,15 @@ def ntk_by_layer(
     ``"layers.0"``, ``"layers.1"``, ... (a name with fewer keys is its own group). Their sum is
     ``ntk(net, x1, x2, ...)`` with the same options; computed in one pass. With ``store``
     the groups share one zarr array (groups, N1, N2, ...) and each value is a `StoredKernel` view.
-    ``dtype`` as in `ntk` (``"float64"`` without the global x64 switch).
+    ``dtype`` as in `ntk` (``"float64"`` without the global x64 switch); ``plan`` a `Plan`
+    made with ``ntkcalc.plan(..., by_layer=depth)`` (see `ntk`).
     """
     with precision_scope(dtype):
         req = prepare(net, x1, x2, outputs=outputs, method=method, params=params,
                       by_layer=depth)
-        kernels, _ = compute(req, outputs=outputs, memory=memory, method=method, store=store,
-                             progress=progress, devices=devices, spot_check=spot_check)
+        kernels, _, _ = compute(req, outputs=outputs, memory=memory, method=method,
+                                store=store, progress=progress, devices=devices,
+                                spot_check=spot_check, plan=plan)
     return {name: _tagged(k, outputs, req.num_outputs)
             for name, k in zip(req.selection.group_names, kernels, strict=True)}
 

@@ -5,13 +5,15 @@ hand recipe users write today — ``jax.jit(jax.vmap(jax.jacrev(f)))`` over exam
 einsum — and each ntkcalc method on the same model and inputs, in float32 at matmul precision
 "highest". ``seconds`` is the fastest of several compiled calls (5, 3 or 1 by the first call's
 time), the same rule for every method and the recipe; ``first`` includes tracing and compilation.
-Each ntkcalc row is also set against its *floor*: the plan's FLOP count at the measured matmul
-rate, the fastest its chosen method could run on this machine.
+Each ntkcalc row is also set against its *floor*: the plan's FLOP count at the matmul rate of
+the plan's `Rates` (this machine's, kept per machine), the fastest its chosen method could run
+here. Rows whose calls take milliseconds are timed over many more calls (best of 200).
 
-Rows: the MLP 784-512-512-512-10 (0.93M parameters), a CNN with 3 conv layers (0.33M), a
-transformer encoder block on 16 tokens, a CNN on 32×32×3 images (321,290), four encoder blocks
-as an nn.scan over layers, an LSTM over 32 steps, the dataset-scale rows of `ntkcalc._tiles.bench_scale`
-(``--scale``) and the sketched-features rows of `ntkcalc._sketch.bench_sketch` (``--sketch``).
+Rows: a tiny MLP 16-16-1 at N = 8 (the fixed cost of one call), the MLP 784-512-512-512-10
+(0.93M parameters), a CNN with 3 conv layers (0.33M), a transformer encoder block on 16 tokens,
+a CNN on 32×32×3 images (321,290), four encoder blocks as an nn.scan over layers, an LSTM over
+32 steps, the dataset-scale rows of `ntkcalc._tiles.bench_scale` (``--scale``) and the
+sketched-features rows of `ntkcalc._sketch.bench_sketch` (``--sketch``).
 """
 
 from __future__ import annotations
@@ -25,6 +27,7 @@ import time
 from ._subprocess import run_child
 
 MODELS = {
+    "tiny": "MLP 16-16-1 (relu, 289 params): the fixed cost of one call",
     "mlp": "MLP 784-512-512-512-10 (relu, 0.93M params)",
     "cnn": "CNN 3×conv3x3 stride 2 (64-128-192) + dense, 28×28×1 (0.33M params)",
     "transformer": "encoder block: embed 1000×64, 4-head attention, LayerNorm, MLP 256, 16 tokens",
@@ -43,7 +46,14 @@ def _model(name: str):
     import ntkcalc
 
     rng = np.random.default_rng(0)
-    if name == "mlp":
+    if name == "tiny":
+        class Tiny(nn.Module):
+            @nn.compact
+            def __call__(self, x):
+                return nn.Dense(1)(nn.relu(nn.Dense(16)(x)))
+
+        module, x = Tiny(), rng.normal(size=(64, 16)).astype(np.float32)
+    elif name == "mlp":
         class MLP(nn.Module):
             @nn.compact
             def __call__(self, x):
@@ -135,14 +145,15 @@ def _recipe(net, outputs: str):
 
 def _timed(fn):
     """(first call, fastest of several further calls, result): compile once, then time the
-    fastest of 5 calls for rows whose first call took under 5 s, of 3 under 20 s, else of 1."""
+    fastest of 200 calls for rows whose first call took under 0.1 s, of 5 under 5 s, of 3 under
+    20 s, else of 1."""
     import jax
 
     t0 = time.perf_counter()
     out = jax.block_until_ready(fn())
     first = time.perf_counter() - t0
     best = float("inf")
-    for _ in range(5 if first < 5 else 3 if first < 20 else 1):
+    for _ in range(200 if first < 0.1 else 5 if first < 5 else 3 if first < 20 else 1):
         t0 = time.perf_counter()
         out = jax.block_until_ready(fn())
         best = min(best, time.perf_counter() - t0)
@@ -155,7 +166,6 @@ def _child(spec: dict) -> dict:
     import jax
 
     import ntkcalc
-    from ntkcalc._engine.cost import machine_rate
 
     jax.config.update("jax_default_matmul_precision", "highest")
     net, x = _model(spec["model"])
@@ -167,13 +177,14 @@ def _child(spec: dict) -> dict:
     else:
         plan = ntkcalc.plan(net, x, outputs=spec["outputs"], method=spec["method"],
                             memory=spec.get("memory"))
-        # The floor: the plan's FLOPs at the measured matmul rate, the limit of its method here.
+        # The floor: the plan's FLOPs at its rates' matmul rate, the limit of its method here.
         out.update(planned=plan.method, estimate_s=plan.seconds, flops=plan.flops,
-                   block=plan.block, floor_s=plan.flops / machine_rate("float32"))
+                   block=plan.block, floor_s=plan.flops / plan.rates.matmul, calls=plan.calls,
+                   call_s=plan.rates.call, rates=plan.rates.source)
         first, second, _ = _timed(lambda: ntkcalc.ntk(
             net, x, outputs=spec["outputs"], method=spec["method"], memory=spec.get("memory"),
             progress=False))
-        out["matmul_flops_per_s"] = machine_rate("float32")
+        out["matmul_flops_per_s"] = plan.rates.matmul
     out.update(first=first, seconds=second,
                peak_rss_gb=resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6)
     return out
@@ -186,6 +197,7 @@ def spawn(module: str, spec: dict, *, devices: int | None = None, timeout: float
 
 ROWS = [
     # (model, N, outputs, methods to time, notes)
+    ("tiny", 8, "trace", ("recipe", "auto")),
     ("mlp", 64, "full", ("recipe", "jacobian", "jvp", "structured", "auto")),
     ("mlp", 128, "full", ("recipe", "jacobian", "structured", "auto")),
     ("mlp", 128, "trace", ("recipe", "jacobian", "structured", "auto")),
@@ -198,6 +210,7 @@ ROWS = [
     ("lstm", 64, "trace", ("recipe", "jacobian", "structured", "auto")),
 ]
 QUICK = [
+    ("tiny", 8, "trace", ("recipe", "auto")),
     ("mlp", 64, "full", ("recipe", "structured", "auto")),
     ("cnn", 16, "full", ("recipe", "structured", "auto")),
 ]
@@ -254,6 +267,11 @@ def summarize(table: list[dict]) -> list[str]:
             best = min(explicit, key=lambda r: r["seconds"])
             parts.append(f"{auto['seconds'] / best['seconds']:.2f}× the fastest explicit "
                          f"({best['method']})")
+        if key[0] == "tiny" and "recipe" in rows:
+            extra = auto["seconds"] - rows["recipe"]["seconds"]
+            parts.append(f"per call {1e3 * auto['seconds']:.3f} ms against the recipe's "
+                         f"{1e3 * rows['recipe']['seconds']:.3f} ms: {1e3 * extra:+.3f} ms "
+                         "(goal: within 1 ms)")
         if key == ("mlp", 1024, "trace"):
             achieved = auto["flops"] / auto["seconds"]
             parts.append(f"contraction {achieved / 1e9:.1f} GFLOP/s = "

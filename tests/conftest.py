@@ -2,13 +2,18 @@
 
 float64 everywhere (tolerances are tied to it: 1e-10 relative for kernels against dense
 references), rank promotion raises, matmuls at "highest", and JAX's persistent compilation cache so
-repeated CI runs on a 2-core machine skip recompiling.
+repeated CI runs on a 2-core machine skip recompiling. The planner's machine rates are kept in a
+file under the temporary directory, never in the user's cache (`ntkcalc._engine.rates`);
+subprocesses inherit the setting.
 """
 
 import os
+import tempfile
 
 os.environ.setdefault("XLA_FLAGS", "")
 os.environ.setdefault("MPLBACKEND", "Agg")
+os.environ.setdefault("NTKCALC_RATES_FILE",
+                      os.path.join(tempfile.gettempdir(), "ntkcalc-test-rates.json"))
 
 import jax  # noqa: E402
 

@@ -115,3 +115,66 @@ def test_several_processes_need_a_store(monkeypatch):
     monkeypatch.setattr(drive, "process", lambda: (0, 2))
     with pytest.raises(ValueError, match="`store`=None with 2 JAX processes"):
         ntkcalc.ntk(net, x, progress=False)
+
+
+PLAN_CHILD = """
+import json, os, sys
+os.environ["XLA_FLAGS"] = "--xla_force_host_platform_device_count=2"
+sys.path.insert(0, sys.argv[1])
+import conftest  # x64, rank promotion "raise", matmul precision "highest" as in the suite
+import jax
+import numpy as np
+import ntkcalc
+from ntkcalc._tiles import drive
+from helpers import ZOO
+
+case = next(c for c in ZOO if c.name == "mlp")
+net, x = case.make(), case.x(np.random.default_rng(0), 21)
+ran = []
+real = drive.assemble
+def spy(plan, req, **kw):
+    ran.append((plan, kw.get("devices")))
+    return real(plan, req, **kw)
+drive.assemble = spy
+out = []
+for memory in ("120KB", "2GB", "40KB"):
+    try:
+        p = ntkcalc.plan(net, x, outputs="full", memory=memory)
+    except MemoryError as e:
+        out.append({"memory": memory, "refused": str(e)})
+        continue
+    k = ntkcalc.ntk(net, x, outputs="full", memory=memory, progress=False)
+    done, devices = ran[-1]
+    out.append({"memory": memory, "planned": [p.method, p.block, list(p.representations),
+                                              len(p.devices), p.working, p.reserved],
+                "ran": [done.method, done.block, list(done.representations), len(devices),
+                        done.working, done.reserved],
+                "kernel": np.asarray(k).tolist()})
+print("RESULT" + json.dumps(out))
+"""
+
+
+@pytest.mark.multiprocess
+def test_plan_on_two_forced_cpu_devices_is_what_ran(single):
+    # Two CPU devices share host memory: the plan splits what the result leaves between them
+    # (or uses one when half is too small), and ntk runs that plan on those devices.
+    import os
+    import subprocess
+    import sys
+
+    from test_tiles_store import TESTS
+
+    _, ref = single
+    env = {k: v for k, v in os.environ.items() if k != "XLA_FLAGS"}
+    proc = subprocess.run([sys.executable, "-c", PLAN_CHILD, TESTS], env=env,
+                          capture_output=True, text=True, timeout=240)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    rows = json.loads(proc.stdout.split("RESULT", 1)[1])
+    used = set()
+    for row in rows:
+        if "refused" in row:
+            continue
+        assert row["planned"] == row["ran"], row["memory"]
+        used.add(row["planned"][3])
+        assert_close(np.array(row["kernel"]), ref, rtol=1e-12)  # jax.jacrev reference
+    assert 2 in used  # at least one budget spreads the tiles over both devices

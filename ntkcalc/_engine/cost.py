@@ -4,20 +4,19 @@ Counts follow the cost analysis of Novak, Sohl-Dickstein & Schoenholz, "Fast Fin
 Tangent Kernel", ICML 2022, arXiv:2206.08720: a VJP or JVP costs about two forward passes; a
 Jacobian contraction costs 2·A·P per pair of examples (A² for the full O×O kernel); a structured
 dense layer costs 2·B·T²·(C + A·R) per pair. Time is FLOPs over a measured matmul rate plus bytes
-moved (factors written and read, Gram temporaries) over a measured streaming rate. Estimates are
+moved (factors written and read, Gram temporaries) over a measured streaming rate, plus the
+fixed cost of each jitted call (the rates: `rates.Rates`). Estimates are
 for choosing, not for promising: the plan prints them next to the rates they are converted with.
 """
 
 from __future__ import annotations
 
-import functools
 import math
-import time
 
 import jax
-import jax.numpy as jnp
 import numpy as np
 
+from .rates import default_rates
 from .structured import CALLS, _sub_jaxpr
 
 
@@ -73,56 +72,37 @@ def factored_pair_elements(a: int, b: int, t: int, outputs: str) -> float:
     return b * t * t * (1 + mode)
 
 
-def _best_seconds(f, x, repeats: int) -> float:
-    """Fastest of ``repeats`` timed calls of the jitted ``f(x)``, after one warm-up call."""
-    f = jax.jit(f)
-    f(x).block_until_ready()
-    best = math.inf
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        f(x).block_until_ready()
-        best = min(best, time.perf_counter() - t0)
-    return max(best, 1e-9)
-
-
-@functools.lru_cache(maxsize=4)
 def machine_rate(dtype_name: str = "float32") -> float:
-    """Measured FLOP/s of a jitted 512×512 matmul on the default device (cached per process)."""
-    n = 512
-    x = jnp.ones((n, n), dtype=dtype_name)
-    return 2.0 * n**3 / _best_seconds(lambda a: jnp.dot(a, a, precision="highest"), x, 5)
+    """Measured FLOP/s of a jitted matmul on the default device: `rates.default_rates`'s
+    ``matmul`` (kept for callers not yet passing `Rates`)."""
+    return default_rates(dtype_name).matmul
 
 
-@functools.lru_cache(maxsize=4)
 def stream_rate(dtype_name: str = "float32") -> float:
-    """Measured bytes/s (read + written) of a jitted elementwise op on 2²⁴ elements, larger than
-    caches: the speed of memory-bound work (writing factors, re-laying them out, streaming Gram
-    temporaries), cached per process."""
-    n = 1 << 24
-    x = jnp.arange(n, dtype=dtype_name)
-    return 2.0 * n * x.dtype.itemsize / _best_seconds(lambda u: u * 2, x, 3)
+    """Measured bytes/s of memory-bound work: `rates.default_rates`'s ``stream``."""
+    return default_rates(dtype_name).stream
 
 
-@functools.lru_cache(maxsize=32)
 def formation_rate(inner: int, dtype_name: str = "float32") -> float:
-    """Measured FLOP/s of forming dense derivatives from factors: a batched GEMM
-    (32 × (1280 × t) @ (t × 64)) whose inner dimension t is the number of positions. Short inner
-    dimensions run far below `machine_rate`. ``inner`` is rounded up to a power of two (≤ 512)
-    so that few sizes are ever measured; cached per process."""
-    t = min(512, 1 << max(0, math.ceil(math.log2(max(1, inner)))))
-    g = jnp.ones((32, 1280, t), dtype=dtype_name)
-    h = jnp.ones((32, t, 64), dtype=dtype_name)
-    f = lambda u: jnp.matmul(u, h, precision="highest")
-    return 2.0 * 32 * 1280 * t * 64 / _best_seconds(f, g, 3)
+    """Measured FLOP/s of forming dense derivatives with inner dimension ``inner``:
+    `rates.default_rates`'s `Rates.formation_at`."""
+    return default_rates(dtype_name).formation_at(inner)
 
 
-def available_memory() -> int:
-    """Bytes of memory available to this process (host RAM; the first device's where known)."""
-    dev = jax.devices()[0]
-    if dev.platform != "cpu":
-        stats = dev.memory_stats() or {}
-        if "bytes_limit" in stats:
-            return int(stats["bytes_limit"] - stats.get("bytes_in_use", 0))
+def device_memory(device) -> int | None:
+    """Free bytes of an accelerator's own memory, ``bytes_limit − bytes_in_use`` from
+    ``device.memory_stats()``; None for a CPU device (its memory is the host's) or when the
+    backend reports none."""
+    if device.platform == "cpu":
+        return None
+    stats = device.memory_stats() or {}
+    if "bytes_limit" not in stats:
+        return None
+    return int(stats["bytes_limit"] - stats.get("bytes_in_use", 0))
+
+
+def host_memory() -> int:
+    """Bytes of host RAM available to this process now."""
     try:
         import psutil
 
@@ -131,6 +111,14 @@ def available_memory() -> int:
         import os
 
         return int(os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE"))
+
+
+def available_memory(devices=None) -> int:
+    """Bytes available to one device's working set: the smallest free accelerator memory among
+    ``devices`` (default: JAX's first device) where JAX reports it, else host RAM."""
+    devs = jax.devices()[:1] if devices is None else list(devices)
+    own = [m for m in map(device_memory, devs) if m is not None]
+    return min(own) if own else host_memory()
 
 
 def itemsize(dtype) -> int:
@@ -142,10 +130,11 @@ _UNITS = {"": 1, "B": 1, "KB": 10**3, "MB": 10**6, "GB": 10**9, "TB": 10**12,
 DEFAULT_MEMORY_FRACTION = 0.5
 
 
-def parse_memory(memory) -> int:
-    """Bytes from ``None`` (half the available memory), an int, or a string like ``"1.5GB"``."""
+def parse_memory(memory, *, devices=None) -> int:
+    """Bytes from ``None`` (half the memory available now to ``devices``, see
+    `available_memory`), an int, or a string like ``"1.5GB"``."""
     if memory is None:
-        return int(DEFAULT_MEMORY_FRACTION * available_memory())
+        return int(DEFAULT_MEMORY_FRACTION * available_memory(devices))
     if isinstance(memory, int | float | np.integer | np.floating) and not isinstance(
             memory, bool | np.bool_):
         if not math.isfinite(memory) or memory <= 0:

@@ -8,6 +8,7 @@ parameter, costs every method with `cost`, and picks the cheapest that fits the 
 from __future__ import annotations
 
 import dataclasses
+import logging
 import math
 
 import jax
@@ -15,6 +16,9 @@ import jax.numpy as jnp
 import numpy as np
 
 from .._adapters.net import Net
+from .._tiles.fingerprint import ADOPTABLE, differences, fingerprint
+from .._tiles.messages import STORE_MISMATCH, STORE_NEEDED
+from .._tiles.placement import check_devices, shares_host_memory
 from . import cost as C
 from . import structured as st
 from .checks import (
@@ -30,7 +34,10 @@ from .checks import (
 from .contract import STREAM_CHUNK_BYTES
 from .options import METHODS, OUTPUTS, basis_size, check_choice, tile_shape
 from .program import Program
+from .rates import Rates, check_rates, default_rates
 from .select import ParamFilter, select
+
+_log = logging.getLogger("ntkcalc")
 
 
 @dataclasses.dataclass(frozen=True)
@@ -46,9 +53,12 @@ class LeafCost:
     note: str = ""
 
 
+
+
 @dataclasses.dataclass(frozen=True, eq=False)
 class Plan:
-    """What `ntkcalc.ntk` will do for this request. Print it for a readable table.
+    """What `ntkcalc.ntk` will do for this request, exactly: ``ntk(..., plan=p)`` runs ``p``.
+    Print it for a readable table.
 
     Fields:
         method: the method chosen ("structured", "jacobian" or "jvp").
@@ -56,12 +66,24 @@ class Plan:
         num_outputs: O; dtype: the kernel dtype.
         block: examples per tile side; cache_factors: whether every block's factors are kept.
         leaves: per-leaf rows for the chosen method.
-        flops, peak_bytes, seconds: estimated totals (seconds: FLOPs at `machine_rate` plus
-            bytes moved at `stream_rate`).
-        estimates: {method: estimated seconds} for every method that was costed.
-        memory: the byte budget the block size was chosen for.
-        rate, stream: the measured matmul FLOP/s and streaming bytes/s the time is estimated at.
+        flops, peak_bytes, seconds: estimated totals (peak: per device; seconds: FLOPs at the matmul
+            rate, bytes moved at the streaming rate, derivative formation at the formation
+            rate, and ``calls`` jitted calls at the per-call cost of ``rates``).
+        estimates: {method: estimated seconds} for every method that was costed (inf: does not
+            fit the budget).
+        memory: the whole byte budget (``memory=``, or the default from the devices' memory).
+        rates: the `Rates` the time was estimated at (``rates.source`` says where they came
+            from: measured, the per-machine file, or given).
         program: the compiled-computation description the tile layer runs.
+        group_names: parameter groups (``ntk_by_layer``).
+        devices: the JAX devices the tiles are spread over.
+        reserved: bytes of ``memory`` set aside for the in-memory result (0 with a store, and on
+            accelerators, where the result is held on the host).
+        working: the budget each device's tiles were planned in: (memory − reserved) / D for D
+            CPU devices (they share host memory), the whole budget for each accelerator.
+        store: where the kernel is written (None: in memory).
+        calls: jitted calls the run makes (factor steps and tile steps).
+        request: what identifies the request the plan was made for (`check_plan`).
     """
 
     method: str
@@ -79,10 +101,25 @@ class Plan:
     seconds: float
     estimates: dict
     memory: int
-    rate: float
-    stream: float
+    rates: Rates
     program: Program = dataclasses.field(repr=False)
     group_names: tuple[str, ...] = ("all",)
+    devices: tuple = ()
+    reserved: int = 0
+    working: int = 0
+    store: str | None = None
+    calls: int = 1
+    request: dict = dataclasses.field(default_factory=dict, repr=False)
+
+    @property
+    def rate(self) -> float:
+        """The matmul FLOP/s of `rates` (kept for callers reading ``plan.rate``)."""
+        return self.rates.matmul
+
+    @property
+    def stream(self) -> float:
+        """The streaming bytes/s of `rates`."""
+        return self.rates.stream
 
     @property
     def tile(self) -> tuple[int, ...]:
@@ -92,13 +129,24 @@ class Plan:
     def shape(self) -> tuple[int, ...]:
         return tile_shape(self.outputs, self.n1, self.n2, self.num_outputs)
 
+    @property
+    def representations(self) -> tuple[str, ...]:
+        """Per differentiated leaf, how it is handled (`LeafCost.representation`)."""
+        return tuple(leaf.representation for leaf in self.leaves)
+
     def __str__(self) -> str:
+        kinds = sorted({d.platform for d in self.devices}) or ["?"]
+        where = f"store {self.store!r}" if self.store is not None else (
+            f"result in memory ({C.format_bytes(self.reserved)} reserved)" if self.reserved
+            else "result in host memory")
         lines = [
             f"ntkcalc plan: method={self.method!r}, outputs={self.outputs!r}, kernel {self.shape} "
             f"{self.dtype}{' (symmetric: upper tiles only)' if self.symmetric else ''}",
             f"  tiles of {self.block}×{self.block} examples, factors "
             f"{'cached per block' if self.cache_factors else 'recomputed per tile'}; "
-            f"budget {C.format_bytes(self.memory)}",
+            f"budget {C.format_bytes(self.memory)}, {where}; "
+            f"{len(self.devices)} {'/'.join(kinds)} device(s), "
+            f"{C.format_bytes(self.working)} each",
         ]
         w = max([len(leaf.name) for leaf in self.leaves] + [9])
         lines.append(f"  {'parameter':<{w}}  {'shape':<16} {'rule':<12} {'as':<10} "
@@ -112,9 +160,9 @@ class Plan:
             )
         lines.append(
             f"  total {C.format_flops(self.flops)}, peak ≈ {C.format_bytes(self.peak_bytes)}, "
-            f"≈ {self.seconds:.3g} s at {self.rate / 1e9:.3g} GFLOP/s and "
-            f"{self.stream / 1e9:.3g} GB/s (measured matmul and streaming rates)"
+            f"{self.calls} jitted call(s), ≈ {self.seconds:.3g} s"
         )
+        lines.append(f"  rates: {self.rates.describe()}")
         alts = ", ".join(f"{m} ≈ {s:.3g} s" for m, s in sorted(self.estimates.items(),
                                                                 key=lambda kv: kv[1]))
         lines.append(f"  estimates: {alts}")
@@ -222,152 +270,446 @@ def _blocks(n1: int, n2: int, peak, budget: int) -> int | None:
     return None
 
 
+
+
 def plan(net, x1, x2=None, *, outputs="trace", memory=None, method="auto",
-         params: ParamFilter = None, by_layer: bool = False) -> Plan:
-    """Plan a kernel computation without running it.
+         params: ParamFilter = None, by_layer: bool | int = False, store=None, devices=None,
+         rates: Rates | None = None) -> Plan:
+    """Plan a kernel computation without running it: exactly what ``ntk(..., plan=p)`` runs.
+
+    One planner takes the whole request: the memory budget (from the devices' own memory by
+    default), the in-memory result's reservation or the store, the split over devices, and the
+    tile size and method of a store being resumed.
 
     Args:
         net: an `ntkcalc.Net`.
         x1: (N1, ...) inputs; x2: (N2, ...) inputs or None for K(x1, x1).
         outputs: "full", "trace", "diagonal" or "logit-sum" (see `ntkcalc.ntk`).
         memory: peak-memory budget: bytes, a string like "2GB", or None for half of what is
-            available now.
+            available now (host RAM on CPU; on an accelerator its own free memory,
+            ``memory_stats()`` bytes_limit − bytes_in_use).
         method: "auto" (cheapest estimate that fits), "structured", "jacobian" or "jvp".
         params: parameter filter (regular expression on dotted names, or a predicate).
+        by_layer: plan the kernel split by parameter group (`ntkcalc.ntk_by_layer`'s ``depth``).
+        store: as in `ntkcalc.ntk`: None plans the result in memory (reserved first on CPU); a
+            store location plans tiles alone, and adopts the tile size and (for "auto") method
+            of a kernel already there.
+        devices: as in `ntkcalc.ntk` (default all local devices).
+        rates: the machine `Rates` to estimate time at (default: this machine's, measured once
+            and kept per machine, `rates.default_rates`); pass fixed rates to reproduce a plan.
 
     Returns:
-        A `Plan`; ``print(plan)`` shows each leaf's rule, FLOPs and bytes, and the totals.
+        A `Plan`; ``print(plan)`` shows each leaf's rule, FLOPs and bytes, the totals, the
+        devices, the reservation and the rates.
     """
     req = prepare(net, x1, x2, outputs=outputs, method=method, params=params, by_layer=by_layer)
-    return plan_request(req, outputs=outputs, memory=memory, method=method)
+    location, stored = None, None
+    if store is not None:
+        from .._tiles.drive import stored_fingerprint  # the tile layer reads stores
+
+        location, stored = stored_fingerprint(store)
+    return plan_request(req, outputs=outputs, memory=memory, method=method, store=location,
+                        stored=stored, devices=check_devices(devices), rates=rates)
 
 
-def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
-    budget = C.parse_memory(memory)
+@dataclasses.dataclass(frozen=True)
+class _Shape:
+    """The sizes every method is priced over: examples, pairs, the tile's elements, itemsize."""
+
+    n1: int
+    n2: int
+    symmetric: bool
+    pairs: float
+    tile_elems: int
+    itemsize: int
+
+
+@dataclasses.dataclass(frozen=True)
+class Priced:
+    """One method priced for one budget (None block: not even a 1×1 tile fits).
+
+    Fields: method; seconds (inf when nothing fits); peak (bytes; at block 1 when nothing
+    fits); block; cache (every block's factors kept); flops; calls (jitted calls); rows (per
+    leaf); program.
+    """
+
+    method: str
+    seconds: float
+    peak: float
+    block: int | None
+    cache: bool
+    flops: float
+    calls: int
+    rows: tuple[LeafCost, ...]
+    program: Program
+
+
+@dataclasses.dataclass(frozen=True)
+class MethodCost:
+    """What one method costs, as functions of the tile side b (examples).
+
+    Per pair of examples ``pair_flops`` (contraction) and ``pair_tmp`` (temporary elements);
+    per example evaluated ``example_flops`` (its factors) and ``example_bytes`` (factors held),
+    plus ``transient`` bytes (VJP residuals and cotangents) while a block is evaluated;
+    ``extra(b)`` more bytes a tile needs (streamed chunks). Novak, Sohl-Dickstein & Schoenholz,
+    ICML 2022, arXiv:2206.08720 (the FLOP counts); memory and traffic terms are common practice.
+    """
+
+    method: str
+    program: Program
+    rows: tuple[LeafCost, ...]
+    pair_flops: float
+    example_flops: float
+    example_bytes: float
+    transient: float
+    pair_tmp: float
+    extra: object = None  # Callable[[int], float] | None
+
+    def peak(self, b: int, s: _Shape) -> float:
+        """Bytes of one tile's working set: the blocks' factors (one block for K(X, X) in a
+        single tile, whose row is its column), transients, Gram temporaries and the tile."""
+        sets = 1 if s.symmetric and b >= s.n1 else 2
+        held = (sets * b * self.example_bytes + b * self.transient
+                + b * b * (self.pair_tmp + s.tile_elems) * s.itemsize)
+        return held + 2 * b * b * s.tile_elems * s.itemsize + (self.extra(b) if self.extra else 0)
+
+    def price(self, s: _Shape, budget: int, rates: Rates, *, block: int | None = None,
+              single_device: bool = True) -> Priced:
+        """The cost at the largest block that fits ``budget`` (or at ``block``)."""
+        b = _blocks(s.n1, s.n2, lambda v: self.peak(v, s), budget) if block is None else block
+        if b is None:
+            return Priced(self.method, math.inf, self.peak(1, s), None, False, 0.0, 0,
+                          self.rows, self.program)
+        rows_b = math.ceil(s.n1 / b)
+        cols_b = rows_b if s.symmetric else math.ceil(s.n2 / b)
+        total_factor_bytes = (s.n1 + (0 if s.symmetric else s.n2)) * self.example_bytes
+        cache = total_factor_bytes + self.peak(b, s) <= budget
+        evaluations = (s.n1 + (0 if s.symmetric else s.n2)) if cache else (
+            s.n1 + (rows_b * s.n1 / 2 if s.symmetric else rows_b * s.n2))
+        flops = s.pairs * self.pair_flops + evaluations * self.example_flops
+        # Memory traffic: factors and residuals written once per evaluation and read by every
+        # tile that uses them; Gram temporaries written and read once per pair.
+        tiles = rows_b * (1 if s.symmetric else cols_b)
+        moved = (evaluations * (self.example_bytes + self.transient)
+                 + tiles * 2 * b * self.example_bytes + 2 * s.pairs * self.pair_tmp * s.itemsize)
+        calls = _calls(s, b, cache, single_device)
+        seconds = flops / rates.matmul + moved / rates.stream + calls * rates.call
+        peak = self.peak(b, s) + (total_factor_bytes if cache else 0)
+        return Priced(self.method, seconds, peak, b, cache, flops, calls, self.rows,
+                      self.program)
+
+
+def _calls(s: _Shape, b: int, cache: bool, single_device: bool) -> int:
+    """Jitted calls of a run (`run.iter_tiles`): one when the kernel is a single tile on one
+    device; else one tile step per tile plus the factor steps: K(X, X) computes each row
+    block's factors once when they are cached, else once per tile (the diagonal tile reuses its
+    row's); K(X1, X2) computes each row block's once and each column block's once when cached,
+    else once per tile."""
+    rows_b = math.ceil(s.n1 / b)
+    cols_b = rows_b if s.symmetric else math.ceil(s.n2 / b)
+    tiles = rows_b * (rows_b + 1) // 2 if s.symmetric else rows_b * cols_b
+    if tiles == 1 and single_device:
+        return 1
+    if s.symmetric:
+        factor_steps = rows_b if cache else tiles
+    else:
+        factor_steps = rows_b + (cols_b if cache else tiles)
+    return tiles + factor_steps
+
+
+@dataclasses.dataclass(frozen=True)
+class _Context:
+    """What every method's pricing reads from the traced request."""
+
+    req: Request
+    outputs: str
+    base: Program
+    names: list
+    shapes: list
+    sizes: list
+    fwd: float
+    acts: float
+    analysis: object
+    basis: int
+    shape: _Shape
+
+
+def _jacobian_cost(ctx: _Context, budget: int, rates: Rates) -> MethodCost:
+    """Jacobian contraction: every leaf dense from the network-wide VJP."""
+    a, isz, outputs = ctx.basis, ctx.shape.itemsize, ctx.outputs
+    rows = tuple(LeafCost(name, shape, "fallback", "jacobian",
+                          ctx.shape.pairs * C.dense_pair_flops(a, p, outputs), a * p * isz)
+                 for name, shape, p in zip(ctx.names, ctx.shapes, ctx.sizes, strict=True))
+    prog = dataclasses.replace(ctx.base, kinds=tuple("dense" for _ in ctx.names))
+    return MethodCost("jacobian", prog, rows,
+                      sum(C.dense_pair_flops(a, p, outputs) for p in ctx.sizes),
+                      _backprop(ctx), a * sum(ctx.sizes) * isz, _transient(ctx), 0.0)
+
+
+def _structured_cost(ctx: _Context, budget: int, rates: Rates) -> MethodCost:
+    """Structured derivatives: per leaf factored, dense or streamed from its consumer, else the
+    fallback Jacobian (`_structured_rows`)."""
+    s, a, isz, analysis = ctx.shape, ctx.basis, ctx.shape.itemsize, ctx.analysis
+    # Each example's dense derivative is written once and read by every tile it is in:
+    # per pair, about 2/(block side) reads plus the write shared by the pairs of its row.
+    pricing = _Pricing(rate=rates.matmul, flops_per_byte=rates.matmul / rates.stream,
+                       side=min(s.n1, s.n2, 256),
+                       examples_per_pair=(s.n1 + (0 if s.symmetric else s.n2)) / s.pairs,
+                       rates=rates)
+    rows, kinds, folds = _structured_rows(analysis, ctx.req.selection, ctx.names, ctx.shapes,
+                                          ctx.sizes, a, isz, ctx.outputs, s.pairs, pricing)
+    example_flops = _backprop(ctx) + sum(
+        2.0 * a * sum(_use_local_flops(u) for u in analysis.uses[k])
+        for k, kind in enumerate(kinds) if kind == "dense" and analysis.uses[k]
+    )
+    pair_tmp = max([_factored_tmp(analysis.uses[k][0], a, ctx.outputs)
+                    for k, kind in enumerate(kinds) if kind == "factored"] + [0.0])
+    # A streamed leaf holds two chunks of dense derivatives (both sides) while contracting:
+    # for a block of b examples min(all its input features, max(16 of them,
+    # STREAM_CHUNK_BYTES)) — the chunk `contract.stream_chunk` picks.
+    streamed = [(a * bsz * r * isz, c) for k, kind in enumerate(kinds) if kind == "streamed"
+                for bsz, _, c, r in [st.factored_sizes(analysis.uses[k][0])]]
+
+    def chunks(b):
+        return max([2.0 * min(b * q * c, max(b * q * 16, STREAM_CHUNK_BYTES))
+                    for q, c in streamed] + [0.0])
+
+    prog = dataclasses.replace(ctx.base, method="structured", kinds=tuple(kinds),
+                               analysis=analysis, folds=folds)
+    return MethodCost("structured", prog, tuple(rows), sum(r.flops for r in rows) / s.pairs,
+                      example_flops, sum(r.bytes_per_example for r in rows), _transient(ctx),
+                      pair_tmp, chunks if streamed else None)
+
+
+def _jvp_cost(ctx: _Context, budget: int, rates: Rates) -> MethodCost:
+    """NTK-vector products: per pair, one JVP per output direction (the basis chunk sized to
+    the budget)."""
+    isz, req = ctx.shape.itemsize, ctx.req
+    p_total = sum(ctx.sizes)
+    chunk = int(max(1, min(64, budget // max(1, 8 * p_total * isz))))
+    rows = tuple(LeafCost(n, s, "—", "jvp", 0.0, 0.0)
+                 for n, s in zip(ctx.names, ctx.shapes, strict=True))
+    prog = dataclasses.replace(ctx.base, method="jvp", jvp_chunk=chunk,
+                               kinds=tuple("dense" for _ in ctx.names))
+    groups = len(req.selection.group_names)
+    x_bytes = int(np.prod(req.x1.shape[1:], dtype=np.int64)) * req.x1.dtype.itemsize
+    return MethodCost("jvp", prog, rows, ctx.basis * 3.0 * ctx.fwd * groups,
+                      ctx.basis * 3.0 * ctx.fwd, x_bytes,
+                      chunk * (p_total * isz * 3 + ctx.acts * isz * 2), 0.0)
+
+
+def _backprop(ctx: _Context) -> float:
+    return ctx.fwd + 2.0 * ctx.basis * ctx.fwd  # one forward, A backward passes
+
+
+def _transient(ctx: _Context) -> float:
+    return ctx.basis * ctx.acts * ctx.shape.itemsize  # VJP residuals and cotangents, per example
+
+
+#: Each method's pricing: (context, per-device budget, rates) → `MethodCost`.
+METHOD_COSTS = {"jacobian": _jacobian_cost, "structured": _structured_cost, "jvp": _jvp_cost}
+
+
+def _context(req: Request, outputs: str) -> _Context:
     n1 = req.x1.shape[0]
     n2 = n1 if req.x2 is None else req.x2.shape[0]
     sym = req.x2 is None
     o = req.num_outputs
-    a = basis_size(outputs, o)
-    isz = C.itemsize(req.dtype)
     sel = req.selection
     names = [sel.names[i] for i in sel.indices]
     shapes = [tuple(np.shape(d)) for d in req.diff]
-    sizes = [int(np.prod(s, dtype=np.int64)) for s in shapes]
     base = Program(req.net.call, jax.tree_util.tree_structure(req.params), sel, outputs, o,
                    "jacobian", ("dense",) * len(req.diff))
     fwd, acts, analysis = _traced(req, base)
-    _check_differentiable(req, analysis, names, method)
-    costed = {"jacobian", "structured", "jvp"} if method == "auto" else {method}
-    if method == "auto" and _custom_vjp(analysis.closed.jaxpr):
-        costed.discard("jvp")  # forward mode is undefined through jax.custom_vjp
-    pairs = n1 * (n1 + 1) / 2 if sym else n1 * n2
-    tile_elems = math.prod(tile_shape(outputs, 1, 1, o))
-    rate = C.machine_rate(req.dtype.name)
-    stream = C.stream_rate(req.dtype.name)
-    x_bytes = int(np.prod(req.x1.shape[1:], dtype=np.int64)) * req.x1.dtype.itemsize
+    shape = _Shape(n1, n2, sym, n1 * (n1 + 1) / 2 if sym else n1 * n2,
+                   math.prod(tile_shape(outputs, 1, 1, o)), C.itemsize(req.dtype))
+    return _Context(req, outputs, base, names, shapes,
+                    [int(np.prod(s, dtype=np.int64)) for s in shapes], fwd, acts, analysis,
+                    basis_size(outputs, o), shape)
 
-    candidates = {}
 
-    def finish(name, program, rows, pair_flops, example_flops, example_bytes, transient, pair_tmp,
-               extra=lambda b: 0.0):
-        def peak(b):
-            # K(X, X) in one tile holds one block of factors (its row is its column).
-            sets = 1 if sym and b >= n1 else 2
-            held = sets * b * example_bytes + b * transient + b * b * (pair_tmp + tile_elems) * isz
-            return held + 2 * b * b * tile_elems * isz + extra(b)
+def _costed(ctx: _Context, method: str) -> list[str]:
+    _check_differentiable(ctx.req, ctx.analysis, ctx.names, method)
+    if method != "auto":
+        return [method]
+    costed = ["jacobian", "structured", "jvp"]
+    if _custom_vjp(ctx.analysis.closed.jaxpr):
+        costed.remove("jvp")  # forward mode is undefined through jax.custom_vjp
+    return costed
 
-        block = _blocks(n1, n2, peak, budget)
-        if block is None:
-            candidates[name] = (math.inf, peak(1), None, rows, program, False, 0.0)
-            return
-        nb_rows = math.ceil(n1 / block)
-        total_factor_bytes = (n1 + (0 if sym else n2)) * example_bytes
-        cache = total_factor_bytes + peak(block) <= budget
-        evaluations = (n1 + (0 if sym else n2)) if cache else (
-            n1 + (nb_rows * n1 / 2 if sym else nb_rows * n2))
-        flops = pairs * pair_flops + evaluations * example_flops
-        # Memory traffic: factors and residuals written once per evaluation and read by every
-        # tile that uses them; Gram temporaries written and read once per pair.
-        tiles = math.ceil(n1 / block) * (math.ceil(n2 / block) if not sym else 1)
-        moved = (evaluations * (example_bytes + transient)
-                 + tiles * 2 * block * example_bytes + 2 * pairs * pair_tmp * isz)
-        seconds = flops / rate + moved / stream
-        candidates[name] = (seconds, peak(block) + (total_factor_bytes if cache else 0), block,
-                            rows, program, cache, flops)
 
-    backprop = fwd + 2.0 * a * fwd  # one forward, A backward passes
-    transient = a * acts * isz  # VJP residuals and cotangents, per example
-
-    # Jacobian contraction: every leaf dense from the network-wide VJP.
-    if "jacobian" in costed:
-        rows = []
-        for name, shape, p in zip(names, shapes, sizes, strict=True):
-            rows.append(LeafCost(name, shape, "fallback", "jacobian",
-                                 pairs * C.dense_pair_flops(a, p, outputs), a * p * isz))
-        prog = dataclasses.replace(base, kinds=tuple("dense" for _ in names))
-        finish("jacobian", prog, rows, sum(C.dense_pair_flops(a, p, outputs) for p in sizes),
-               backprop, a * sum(sizes) * isz, transient, 0.0)
-
-    # Structured derivatives: per leaf factored, dense or streamed from its consumer, else the
-    # fallback Jacobian.
-    if "structured" in costed:
-        # Each example's dense derivative is written once and read by every tile it is in:
-        # per pair, about 2/(block side) reads plus the write shared by the pairs of its row.
-        pricing = _Pricing(rate=rate, flops_per_byte=rate / stream,
-                           side=min(n1, n1 if sym else n2, 256),
-                           examples_per_pair=(n1 + (0 if sym else n2)) / pairs,
-                           dtype_name=req.dtype.name)
-        rows, kinds, folds = _structured_rows(analysis, sel, names, shapes, sizes, a, isz,
-                                              outputs, pairs, pricing)
-        pair_flops = sum(r.flops for r in rows) / pairs
-        example_bytes = sum(r.bytes_per_example for r in rows)
-        example_flops = backprop + sum(
-            2.0 * a * sum(_use_local_flops(u) for u in analysis.uses[k])
-            for k, kind in enumerate(kinds) if kind == "dense" and analysis.uses[k]
-        )
-        pair_tmp = max([_factored_tmp(analysis.uses[k][0], a, outputs)
-                        for k, kind in enumerate(kinds) if kind == "factored"] + [0.0])
-        # A streamed leaf holds two chunks of dense derivatives (both sides) while contracting:
-        # for a block of b examples min(all its input features, max(16 of them,
-        # STREAM_CHUNK_BYTES)) — the chunk `contract.stream_chunk` picks.
-        streamed = [(a * bsz * r * isz, c) for k, kind in enumerate(kinds) if kind == "streamed"
-                    for bsz, _, c, r in [st.factored_sizes(analysis.uses[k][0])]]
-
-        def chunks(b):
-            return max([2.0 * min(b * q * c, max(b * q * 16, STREAM_CHUNK_BYTES))
-                        for q, c in streamed] + [0.0])
-
-        prog = dataclasses.replace(base, method="structured", kinds=tuple(kinds),
-                                   analysis=analysis, folds=folds)
-        finish("structured", prog, rows, pair_flops, example_flops, example_bytes, transient,
-               pair_tmp, extra=chunks)
-
-    # NTK-vector products: per pair, one JVP per output direction.
-    if "jvp" in costed:
-        p_total = sum(sizes)
-        chunk = int(max(1, min(64, budget // max(1, 8 * p_total * isz))))
-        rows = [LeafCost(n, s, "—", "jvp", 0.0, 0.0) for n, s in zip(names, shapes, strict=True)]
-        prog = dataclasses.replace(base, method="jvp", jvp_chunk=chunk,
-                                   kinds=tuple("dense" for _ in names))
-        groups = len(sel.group_names)
-        jvp_pair = a * 3.0 * fwd * groups
-        finish("jvp", prog, rows, jvp_pair, a * 3.0 * fwd, x_bytes,
-               chunk * (p_total * isz * 3 + acts * isz * 2), 0.0)
-
-    feasible = {m: v for m, v in candidates.items() if v[2] is not None}
-    if not feasible or (method != "auto" and method not in feasible):
-        smallest = min(v[1] for v in candidates.values())
+def _choose(ctx: _Context, costed: list[str], *, memory, budget: int, rates: Rates,
+            single_device: bool, block: int | None = None) -> tuple[Priced, dict]:
+    """(the cheapest priced method that fits ``budget``, {method: estimated seconds})."""
+    priced = {m: METHOD_COSTS[m](ctx, budget, rates).price(
+        ctx.shape, budget, rates, single_device=single_device) for m in costed}
+    feasible = {m: p for m, p in priced.items() if p.block is not None}
+    if not feasible:
+        smallest = min(p.peak for p in priced.values())
         raise MemoryError(
             f"`memory`={memory!r} ({C.format_bytes(budget)}) is too small for even one 1×1 tile "
             f"of this kernel: the smallest budget that works is about "
             f"{C.format_bytes(smallest * 1.25)}. Raise `memory` or choose outputs='trace'."
         )
-    chosen = min(feasible, key=lambda m: feasible[m][0]) if method == "auto" else method
-    seconds, peak, block, rows, program, cache, flops = feasible[chosen]
-    estimates = {m: v[0] for m, v in candidates.items()}
-    return Plan(chosen, outputs, n1, n2, sym, o, req.dtype, block, cache, tuple(rows), flops,
-                peak, seconds, estimates, budget, rate, stream, program, sel.group_names)
+    best = min(feasible.values(), key=lambda p: p.seconds)
+    if block is not None:  # a store's tile size, at most the one that fits
+        best = METHOD_COSTS[best.method](ctx, budget, rates).price(
+            ctx.shape, budget, rates, block=block, single_device=single_device)
+    return best, {m: p.seconds for m, p in priced.items()}
+
+
+def result_bytes(req: Request, outputs: str) -> int:
+    """Bytes of the in-memory result: groups × the kernel's elements × itemsize."""
+    shape = tile_shape(outputs, req.x1.shape[0],
+                       (req.x1 if req.x2 is None else req.x2).shape[0], req.num_outputs)
+    return len(req.selection.group_names) * math.prod(shape) * C.itemsize(req.dtype)
+
+
+def plan_request(req: Request, *, outputs: str, memory, method: str, store: str | None = None,
+                 stored: dict | None = None, devices=None, rates: Rates | None = None) -> Plan:
+    """The plan of a validated request (see `plan`): budget, reservation, devices, store.
+
+    ``store`` is the store's location (None: in memory) and ``stored`` the fingerprint found
+    there (None: empty). ``devices`` are validated JAX devices (default all local devices).
+
+    Budget: ``memory`` (default half of what `cost.available_memory` reports for the devices).
+    Without a store, on CPU, the result (groups × kernel bytes) is reserved first; on an
+    accelerator the result is held on the host and each device's tiles get the whole budget.
+    D CPU devices share host memory: each device's tiles are planned in 1/D of what is left,
+    or on one device when that is too small.
+    """
+    devs = tuple(jax.local_devices()) if devices is None else tuple(devices)
+    rates = default_rates(req.dtype.name, device=devs[0]) if rates is None else check_rates(
+        rates)
+    budget = C.parse_memory(memory, devices=devs)
+    ctx = _context(req, outputs)
+    want = method
+    if stored is not None and method == "auto" and stored.get("method") in METHOD_COSTS:
+        want = stored["method"]  # resume in the store's method
+    costed = _costed(ctx, want)
+    host = shares_host_memory(devs)
+    result = result_bytes(req, outputs) if store is None else 0
+    reserved = result if host else 0
+    working = budget - reserved
+    share = len(devs) if len(devs) > 1 and host else 1
+    attempts = [(working // share, devs)] + ([(working, devs[:1])] if share > 1 else [])
+    too_small_for_store = None
+    for per_device, use in attempts if working > 0 else []:
+        try:
+            best, estimates = _choose(ctx, costed, memory=memory, budget=per_device, rates=rates,
+                                      single_device=len(use) == 1)
+        except MemoryError:
+            if share > 1 and use is devs:
+                _log.info("ntkcalc: budget too small for tiles on %d CPU devices at once; "
+                          "using one", share)
+            continue
+
+        def build(best, use=use, per_device=per_device, estimates=estimates):
+            return Plan(best.method, outputs, ctx.shape.n1, ctx.shape.n2, ctx.shape.symmetric,
+                        req.num_outputs, req.dtype, best.block, best.cache, best.rows,
+                        best.flops, best.peak, best.seconds, estimates, budget, rates,
+                        best.program, req.selection.group_names, tuple(use), reserved,
+                        per_device, store, best.calls, request_signature(req, outputs))
+
+        made = build(best)
+        if stored is not None:
+            check_stored(made, req, stored, tiles=False)  # another kernel: refused first
+            if stored["block"] > best.block:
+                too_small_for_store = best.block
+                continue
+            if stored["block"] < best.block:
+                made = build(_choose(ctx, costed, memory=memory, budget=per_device, rates=rates,
+                                     single_device=len(use) == 1, block=stored["block"])[0])
+        return made
+    if too_small_for_store is not None:
+        raise MemoryError(
+            f"`store`={store!r} was written in tiles of {stored['block']} examples, but "
+            f"`memory`={memory!r} fits only {too_small_for_store}: resume with the `memory` of "
+            "the first run (or more), or choose a new `store` path."
+        )
+    try:
+        _choose(ctx, costed, memory=memory, budget=budget, rates=rates, single_device=True)
+    except MemoryError as e:
+        if not reserved:
+            raise
+        raise MemoryError(f"{e} Keeping the result in memory needs another "
+                          f"{C.format_bytes(result)} on top, or pass `store=`.") from None
+    raise MemoryError(STORE_NEEDED.format(
+        result=C.format_bytes(result),
+        why="alone exceeds" if working <= 0 else "and one tile together exceed",
+        memory=memory, budget=C.format_bytes(budget)))
+
+
+def check_stored(plan: Plan, req: Request, stored: dict, *, tiles: bool = True) -> None:
+    """Refuse a store that holds another kernel (`STORE_MISMATCH`, naming the fields), or (with
+    ``tiles``) this kernel in other tiles than ``plan``'s."""
+    now = fingerprint(plan, req)
+    diffs = differences(stored, now)
+    hard = [d for d in diffs if d not in ADOPTABLE]
+    if hard:
+        raise ValueError(STORE_MISMATCH.format(
+            store=plan.store, fields=", ".join(hard),
+            stored={k: stored.get(k) for k in hard}, now={k: now.get(k) for k in hard}))
+    if diffs and tiles:
+        raise ValueError(
+            f"`store`={plan.store!r} holds this kernel in tiles of {stored.get('block')} "
+            f"examples, but the plan runs tiles of {plan.block}: make the plan with the same "
+            "`store=` (it adopts the store's tiles), or choose a new `store` path."
+        )
+
+
+def request_signature(req: Request, outputs: str) -> dict:
+    """What a plan must share with a request to run it: the Net's call, input shapes and
+    dtypes, compute dtype, outputs mode, differentiated parameters (names and shapes) and
+    groups. Parameter *values* may differ (a checkpoint of the same model)."""
+    sel = req.selection
+    return {
+        "net call": req.net.call,
+        "x1 shape": tuple(req.x1.shape),
+        "x2 shape": None if req.x2 is None else tuple(req.x2.shape),
+        "input dtype": str(req.x1.dtype),
+        "dtype": np.dtype(req.dtype).name,
+        "outputs": outputs,
+        "parameters": tuple(sel.names[i] for i in sel.indices),
+        "parameter shapes": tuple(tuple(np.shape(d)) for d in req.diff),
+        "groups": tuple(sel.group_names),
+        "num_outputs": req.num_outputs,
+    }
+
+
+def check_plan(plan: Plan, req: Request, *, outputs: str, memory, method: str,
+               store: str | None, devices) -> Plan:
+    """``plan`` if it was made for this request and these options, else ValueError naming
+    what differs (the plan is run exactly; options that would change it are refused)."""
+    if not isinstance(plan, Plan):
+        raise ValueError(f"`plan`={plan!r} is not a Plan: pass the result of ntkcalc.plan(...) "
+                         "for the same request, or plan=None.")
+    now = request_signature(req, outputs)
+    diffs = [k for k in now if now[k] != plan.request.get(k)]
+    if diffs:
+        shown = "; ".join(f"{k}: plan {plan.request.get(k)!r}, now {now[k]!r}" for k in diffs)
+        raise ValueError(
+            f"`plan` was made for another request ({shown}): make it with ntkcalc.plan on the "
+            "same net, inputs, outputs, params (and by_layer) as this call, or pass plan=None.")
+    if memory is not None and C.parse_memory(memory) != plan.memory:
+        raise ValueError(
+            f"`memory`={memory!r} disagrees with `plan`, made for {C.format_bytes(plan.memory)} "
+            f"({plan.memory} bytes): leave `memory` out (the plan carries its budget) or plan "
+            "again with this `memory`.")
+    if method != "auto" and method != plan.method:
+        raise ValueError(
+            f"`method`={method!r} disagrees with `plan`, which runs {plan.method!r}: leave "
+            "`method` out or plan again with this `method`.")
+    if store != plan.store:
+        raise ValueError(
+            f"`store`={store!r} disagrees with `plan`, made for "
+            f"{'the kernel in memory (store=None)' if plan.store is None else repr(plan.store)}: "
+            "pass the same `store` to ntkcalc.plan and this call.")
+    if devices is not None and tuple(devices) != tuple(plan.devices):
+        raise ValueError(
+            f"`devices`={list(devices)!r} disagrees with `plan`, made for "
+            f"{list(plan.devices)!r}: leave `devices` out or plan again with them.")
+    return plan
 
 
 def _check_differentiable(req: Request, analysis, names: list[str], method: str) -> None:
@@ -416,14 +758,14 @@ class _Pricing:
 
     rate: measured matmul FLOP/s; flops_per_byte: rate / measured streaming bytes/s;
     side: examples per tile side (at most 256); examples_per_pair: examples whose factors are
-    written, per pair of examples; dtype_name: the compute dtype (for `cost.formation_rate`).
+    written, per pair of examples; rates: the machine `Rates` (formation rates).
     """
 
     rate: float
     flops_per_byte: float
     side: int
     examples_per_pair: float
-    dtype_name: str
+    rates: Rates
 
 
 def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs,
@@ -472,7 +814,7 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
             # One example's dense derivative from its factors, at the speed of a GEMM whose inner
             # dimension is the number of positions t (slow for small t), in matmul FLOPs.
             form = (2.0 * a * bsz * t * (c + extra) * r * pricing.rate
-                    / C.formation_rate(t, pricing.dtype_name))
+                    / pricing.rates.formation_at(t))
             dense_bytes = a * (p + (sizes[folds[k]] if extra else 0)) * isz
             fpb, side, per_pair = pricing.flops_per_byte, pricing.side, pricing.examples_per_pair
             traffic = 2 * C.factored_pair_elements(a, bsz, t, outputs) * isz * fpb

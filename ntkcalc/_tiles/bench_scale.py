@@ -88,14 +88,10 @@ def _measure(spec: dict) -> dict:
             times.append(time.perf_counter() - t0)
         return {"seconds": min(times), "all_seconds": times, "tiles": count,
                 "method": plan.method, "base_rss_gb": base_rss}
-    from ntkcalc._tiles.drive import _plan, _result_bytes
-    from ntkcalc._tiles.placement import check_devices
-
     req = prepare(net, x, outputs=spec["outputs"])
-    in_memory = spec.get("store") is None
-    plan, _ = _plan(req, outputs=spec["outputs"], memory=spec["memory"], method="auto",
-                    devs=check_devices(None), in_memory=in_memory)
-    result = _result_bytes(req, spec["outputs"]) if in_memory else 0
+    plan = plan_request(req, outputs=spec["outputs"], memory=spec["memory"], method="auto",
+                        store=spec.get("store"))
+    result = plan.reserved
     t0 = time.perf_counter()
     k = ntkcalc.ntk(net, x, outputs=spec["outputs"], memory=spec["memory"],
                     store=spec.get("store"), progress=False)

@@ -45,6 +45,8 @@ def iter_tiles(plan, req, todo: list[Tile] | None = None, *,
     b = plan.block
     whole = tiles(plan.n1, plan.n2, b, symmetric=plan.symmetric)
     todo = whole if todo is None else todo
+    if devices is not None and list(devices) == jax.devices()[:1]:
+        devices = None  # the default device: jit places the arguments there itself
     devs = [None] if devices is None else list(devices)
     put = (lambda v, d: v) if devices is None else jax.device_put
     args = {d: put((req.diff, req.other, req.state), d) for d in devs}
