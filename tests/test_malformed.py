@@ -108,6 +108,7 @@ CASES = {
         "devices": st.one_of(st.integers(), st.text(min_size=1, max_size=3), st.just([]),
                              st.just([1, 2])),
         "spot_check": bad_count,
+        "plan": st.one_of(st.integers(), st.text(max_size=3), junk),
     }),
     "plan": (ntkcalc.plan, lambda: dict(net=_net(), x1=X), {
         "net": st.one_of(st.none(), junk),
@@ -116,6 +117,10 @@ CASES = {
         "memory": st.one_of(bad_positive, st.just("lots")),
         "method": bad_choice(("auto", "structured", "jacobian", "jvp")),
         "params": st.one_of(st.integers(), st.just("no_such_parameter"), st.just("(")),
+        "store": st.one_of(st.integers(), st.floats(), st.just([1]), st.just({"a": 1})),
+        "devices": st.one_of(st.integers(), st.text(min_size=1, max_size=3), st.just([]),
+                             st.just([1, 2])),
+        "rates": st.one_of(st.integers(), st.text(max_size=3), junk),
     }),
     "ntk_by_layer": (ntkcalc.ntk_by_layer, lambda: dict(net=_net(), x1=X), {
         "net": st.one_of(st.none(), junk),
