@@ -20,6 +20,7 @@ and rewritten.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import json
 import math
 import os
@@ -172,6 +173,7 @@ def machine_key(dtype: str, device=None) -> str:
                      f"jax {jax.__version__}", dtype])
 
 
+@functools.cache
 def _cpu_model() -> str:
     try:
         with open("/proc/cpuinfo") as f:
