@@ -6,8 +6,9 @@ einsum — and each ntkcalc method on the same model and inputs, in float32 at m
 "highest". ``seconds`` is the fastest of several compiled calls (5, 3 or 1 by the first call's
 time), the same rule for every method and the recipe; ``first`` includes tracing and compilation.
 Each ntkcalc row is also set against its *floor*: the plan's FLOP count at the matmul rate of
-the plan's `Rates` (this machine's, kept per machine), the fastest its chosen method could run
-here. Rows whose calls take milliseconds are timed over many more calls (best of 200).
+the plan's `Rates` (this machine's, kept per machine) plus its jitted calls at their fixed cost,
+the fastest its chosen method could run here. Rows whose calls take milliseconds are timed over
+many more calls (best of 200).
 
 Rows: a tiny MLP 16-16-1 at N = 8 (the fixed cost of one call), the MLP 784-512-512-512-10
 (0.93M parameters), a CNN with 3 conv layers (0.33M), a transformer encoder block on 16 tokens,
@@ -177,10 +178,12 @@ def _child(spec: dict) -> dict:
     else:
         plan = ntkcalc.plan(net, x, outputs=spec["outputs"], method=spec["method"],
                             memory=spec.get("memory"))
-        # The floor: the plan's FLOPs at its rates' matmul rate, the limit of its method here.
+        # The floor: the plan's FLOPs at its rates' matmul rate plus its jitted calls at their
+        # fixed cost, the limit of its method here.
         out.update(planned=plan.method, estimate_s=plan.seconds, flops=plan.flops,
-                   block=plan.block, floor_s=plan.flops / plan.rates.matmul, calls=plan.calls,
-                   call_s=plan.rates.call, rates=plan.rates.source)
+                   block=plan.block, calls=plan.calls, call_s=plan.rates.call,
+                   floor_s=plan.flops / plan.rates.matmul + plan.calls * plan.rates.call,
+                   rates=plan.rates.source)
         first, second, _ = _timed(lambda: ntkcalc.ntk(
             net, x, outputs=spec["outputs"], method=spec["method"], memory=spec.get("memory"),
             progress=False))
@@ -238,13 +241,17 @@ def jacobian_memory_row(*, log=print) -> dict:
     return row
 
 
+def _seconds(t: float) -> str:
+    return f"{t:9.3f} s " if t >= 0.01 else f"{1e3 * t:9.3f} ms"
+
+
 def _format_row(r: dict) -> str:
     extra = f" planned={r['planned']}" if "planned" in r else ""
     if "floor_s" in r:
-        extra += f" {r['seconds'] / r['floor_s']:.2f}× floor ({r['floor_s']:.3f} s)"
+        extra += f" {r['seconds'] / r['floor_s']:.2f}× floor ({_seconds(r['floor_s']).strip()})"
     return (f"{r['model']:<12} N={r['N']:<5} {r['outputs']:<6} {r['method']:<22} "
-            f"{r['seconds']:9.3f} s  (first {r['first']:.2f} s)  peak {r['peak_rss_gb']:.2f} GB"
-            + extra)
+            f"{_seconds(r['seconds'])}  (first {r['first']:.2f} s)  peak "
+            f"{r['peak_rss_gb']:.2f} GB" + extra)
 
 
 def summarize(table: list[dict]) -> list[str]:
