@@ -30,6 +30,7 @@ import time
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 #: Version of the rates file's layout; a file of another version is measured again.
 FILE_VERSION = 1
@@ -50,8 +51,8 @@ class Rates:
         formation: ((t, FLOP/s), ...) of forming dense derivatives from factors, a batched GEMM
             (32 × (1280 × t) @ (t × 64)) per inner size t (positions); short inner dimensions run
             far below ``matmul``. Sizes are powers of two up to 512 (see `formation_at`).
-        call: seconds of the fixed cost of one jitted call (dispatch and host synchronisation of
-            a tiny computation): what a tiny model's kernel costs whatever its FLOPs.
+        call: seconds of the fixed cost of one jitted call (dispatch, arguments, and fetching a
+            tiny result to the host): what each factor or tile step costs whatever its FLOPs.
         platform, device_kind, dtype: what they were measured on ("cpu", "gpu", ...;
             ``jax.Device.device_kind``; "float32" or "float64").
         source: where they came from: "measured", "file <path>" or "given".
@@ -122,6 +123,21 @@ def _best_seconds(f, x, repeats: int) -> float:
     return max(best, 1e-9)
 
 
+def _call_seconds(dtype: str, repeats: int = 20) -> float:
+    """Fastest of ``repeats`` jitted calls on 8 small arguments, their result fetched to the host:
+    what one factor or tile step costs beyond its FLOPs (dispatch, argument handling, the
+    device-to-host copy of a tiny tile)."""
+    args = [jnp.ones(8, dtype=dtype) for _ in range(8)]
+    f = jax.jit(lambda *a: sum(a))
+    np.asarray(f(*args))
+    best = math.inf
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        np.asarray(f(*args))
+        best = min(best, time.perf_counter() - t0)
+    return best
+
+
 def _device(device):
     return jax.devices()[0] if device is None else device
 
@@ -131,7 +147,8 @@ def measure_rates(*, dtype: str = "float32", device=None) -> Rates:
 
     matmul: 2·512³ FLOPs of ``jnp.dot`` at precision "highest"; stream: 2·2²⁴·itemsize bytes of
     ``u * 2``; formation: the batched GEMM of `Rates.formation` at every power-of-two inner size
-    up to 512; call: a jitted ``x + 1`` on 8 elements. Each is the fastest of a few timed calls
+    up to 512; call: a jitted sum of 8 arguments of 8 elements, fetched to the host. Each is the
+    fastest of a few timed calls
     after a warm-up (compilation excluded).
     """
     dev = _device(device)
@@ -151,7 +168,7 @@ def measure_rates(*, dtype: str = "float32", device=None) -> Rates:
             h = jnp.ones((32, t, 64), dtype=dtype)
             seconds = _best_seconds(lambda u, h=h: jnp.matmul(u, h, precision="highest"), g, 3)
             formation.append((t, 2.0 * 32 * 1280 * t * 64 / seconds))
-        call = _best_seconds(lambda u: u + 1, jnp.ones(8, dtype=dtype), 20)
+        call = _call_seconds(dtype)
     return Rates(matmul, stream, tuple(formation), call, dev.platform, dev.device_kind, dtype,
                  "measured")
 
