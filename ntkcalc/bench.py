@@ -265,8 +265,9 @@ def summarize(table: list[dict]) -> list[str]:
         if auto is None:
             continue
         parts = [f"{key[0]} N={key[1]} {key[2]}: auto ({auto.get('planned')}) "
-                 f"{auto['seconds']:.3f} s, {auto['seconds'] / auto['floor_s']:.2f}× its floor"]
-        if "recipe" in rows:
+                 f"{_seconds(auto['seconds']).strip()}, "
+                 f"{auto['seconds'] / auto['floor_s']:.2f}× its floor"]
+        if "recipe" in rows and key[0] != "tiny":
             parts.append(f"{rows['recipe']['seconds'] / auto['seconds']:.1f}× faster than the "
                          "recipe")
         explicit = [r for m, r in rows.items() if m in ("jacobian", "jvp", "structured")]
