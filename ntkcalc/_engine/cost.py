@@ -16,6 +16,7 @@ import math
 import jax
 import numpy as np
 
+from .rates import _best_seconds as _best_seconds  # measured costs live in rates.py
 from .rates import default_rates
 from .structured import CALLS, _sub_jaxpr
 
