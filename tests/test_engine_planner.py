@@ -230,7 +230,7 @@ class _FakeDevice:
         return self._stats
 
 
-def test_accelerator_budget_comes_from_its_own_memory():
+def test_accelerator_budget_comes_from_its_own_memory(monkeypatch):
     net, x, _ = mlp()
     req = prepare(net, x, outputs="full")
     gpus = (_FakeDevice("gpu", 8_000_000, 2_000_000), _FakeDevice("gpu", 9_000_000, 1_000_000))
@@ -240,6 +240,13 @@ def test_accelerator_budget_comes_from_its_own_memory():
     # The result is held on the host: nothing reserved; each device has the whole budget.
     assert p.reserved == 0 and p.working == p.memory and p.devices == gpus
     assert "2 gpu device(s)" in str(p)
+    # ... but it must fit the host: a result over half the free host memory asks for a store.
+    monkeypatch.setattr(C, "host_memory", lambda: 200_000)  # 115 KB of result > 100 KB
+    with pytest.raises(MemoryError, match="exceeds half the host memory .* pass `store=`"):
+        plan_request(req, outputs="full", memory=None, method="auto", devices=gpus, rates=FIXED)
+    assert plan_request(req, outputs="full", memory=None, method="auto", devices=gpus,
+                        rates=FIXED, store="k.zarr").reserved == 0
+    monkeypatch.undo()
     # CPU devices share host memory: the result is reserved, the rest split between them.
     cpus = (_FakeDevice("cpu"), _FakeDevice("cpu"))
     q = plan_request(req, outputs="full", memory="1MB", method="auto", devices=cpus, rates=FIXED)

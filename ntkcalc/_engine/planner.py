@@ -590,6 +590,13 @@ def plan_request(req: Request, *, outputs: str, memory, method: str, store: str 
     host = shares_host_memory(devs)
     result = result_bytes(req, outputs) if store is None else 0
     reserved = result if host else 0
+    if not host and result > C.DEFAULT_MEMORY_FRACTION * C.host_memory():
+        # On an accelerator the result is assembled on the host, outside the device's budget.
+        raise MemoryError(
+            f"the in-memory kernel ({C.format_bytes(result)}) exceeds half the host memory "
+            f"available ({C.format_bytes(C.host_memory())}), where it is assembled from the "
+            f"{devs[0].platform} device(s): pass `store=` (e.g. store='kernel.zarr') to write it "
+            "to disk tile by tile.")
     working = budget - reserved
     share = len(devs) if len(devs) > 1 and host else 1
     attempts = [(working // share, devs)] + ([(working, devs[:1])] if share > 1 else [])
