@@ -17,6 +17,7 @@ import numpy as np
 
 from .._adapters.net import Net
 from .._tiles.fingerprint import ADOPTABLE, differences, fingerprint
+from .._tiles.location import stored_fingerprint
 from .._tiles.messages import STORE_MISMATCH, STORE_NEEDED
 from .._tiles.placement import check_devices, shares_host_memory
 from . import cost as C
@@ -303,11 +304,7 @@ def plan(net, x1, x2=None, *, outputs="trace", memory=None, method="auto",
         devices, the reservation and the rates.
     """
     req = prepare(net, x1, x2, outputs=outputs, method=method, params=params, by_layer=by_layer)
-    location, stored = None, None
-    if store is not None:
-        from .._tiles.drive import stored_fingerprint  # the tile layer reads stores
-
-        location, stored = stored_fingerprint(store)
+    location, stored = (None, None) if store is None else stored_fingerprint(store)
     return plan_request(req, outputs=outputs, memory=memory, method=method, store=location,
                         stored=stored, devices=check_devices(devices), rates=rates)
 

@@ -22,7 +22,6 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
-import os
 import time
 import warnings
 
@@ -32,6 +31,7 @@ from .._engine.checks import check_flag
 from .._engine.planner import check_plan, check_stored, plan_request
 from .blocking import tiles
 from .fingerprint import fingerprint
+from .location import check_store as check_store  # also used by the sketched-features store
 from .messages import NOT_A_STORE, STORE_DAMAGED, STORE_INCOMPLETE, ZERO_KERNEL
 from .placement import barrier, check_devices, process, share
 from .progress import bar, logger
@@ -51,28 +51,6 @@ from .store import (
     read_fingerprint,
 )
 from .view import RunInfo, StoredKernel
-
-
-def check_store(store):
-    """``store`` unchanged if it is None, a path, a URL or a zarr store object."""
-    if store is None or isinstance(store, str | os.PathLike):
-        return store
-    import zarr.abc.store
-
-    if isinstance(store, zarr.abc.store.Store):
-        return store
-    raise ValueError(
-        f"`store`={store!r} is not a store location: pass a directory path such as "
-        "'kernel.zarr', a URL zarr can open, or a zarr store object."
-    )
-
-
-def stored_fingerprint(store) -> tuple[str, dict | None]:
-    """(where ``store`` is, the fingerprint of the kernel it holds or None when it is empty or
-    damaged): what the planner adopts a resumed store's tiles and method from."""
-    store = check_store(store)
-    found = inspect(store)
-    return describe(store), (None if found.damage else found.fingerprint)
 
 
 def compute(req, *, outputs, memory, method, store, progress, devices, plan=None,
