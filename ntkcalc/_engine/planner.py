@@ -10,6 +10,7 @@ from __future__ import annotations
 import dataclasses
 import logging
 import math
+from collections.abc import Callable
 
 import jax
 import jax.numpy as jnp
@@ -34,7 +35,7 @@ from .checks import (
 )
 from .contract import STREAM_CHUNK_BYTES
 from .options import METHODS, OUTPUTS, basis_size, check_choice, tile_shape
-from .program import Program
+from .program import STEPS, Program, Steps
 from .rates import Rates, check_rates, default_rates
 from .select import ParamFilter, select
 
@@ -503,8 +504,21 @@ def _transient(ctx: _Context) -> float:
     return ctx.basis * ctx.acts * ctx.shape.itemsize  # VJP residuals and cotangents, per example
 
 
-#: Each method's pricing: (context, per-device budget, rates) → `MethodCost`.
-METHOD_COSTS = {"jacobian": _jacobian_cost, "structured": _structured_cost, "jvp": _jvp_cost}
+@dataclasses.dataclass(frozen=True)
+class Method:
+    """One way of computing the kernel, whole: its two compiled steps (`program.Steps`: per-block
+    factors, and the tile from two blocks' factors) and its pricing, ``price(context,
+    per-device budget, rates) → MethodCost``. Novak, Sohl-Dickstein & Schoenholz, ICML 2022,
+    arXiv:2206.08720 (the three methods)."""
+
+    name: str
+    steps: Steps
+    price: Callable[[_Context, int, Rates], MethodCost]
+
+
+#: Every method by name ("jacobian", "structured", "jvp").
+BY_METHOD = {name: Method(name, STEPS[name], price) for name, price in (
+    ("jacobian", _jacobian_cost), ("structured", _structured_cost), ("jvp", _jvp_cost))}
 
 
 def _context(req: Request, outputs: str) -> _Context:
@@ -538,7 +552,7 @@ def _costed(ctx: _Context, method: str) -> list[str]:
 def _choose(ctx: _Context, costed: list[str], *, memory, budget: int, rates: Rates,
             single_device: bool, block: int | None = None) -> tuple[Priced, dict]:
     """(the cheapest priced method that fits ``budget``, {method: estimated seconds})."""
-    priced = {m: METHOD_COSTS[m](ctx, budget, rates).price(
+    priced = {m: BY_METHOD[m].price(ctx, budget, rates).price(
         ctx.shape, budget, rates, single_device=single_device) for m in costed}
     feasible = {m: p for m, p in priced.items() if p.block is not None}
     if not feasible:
@@ -550,7 +564,7 @@ def _choose(ctx: _Context, costed: list[str], *, memory, budget: int, rates: Rat
         )
     best = min(feasible.values(), key=lambda p: p.seconds)
     if block is not None:  # a store's tile size, at most the one that fits
-        best = METHOD_COSTS[best.method](ctx, budget, rates).price(
+        best = BY_METHOD[best.method].price(ctx, budget, rates).price(
             ctx.shape, budget, rates, block=block, single_device=single_device)
     return best, {m: p.seconds for m, p in priced.items()}
 
@@ -581,7 +595,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str, store: str 
     budget = C.parse_memory(memory, devices=devs)
     ctx = _context(req, outputs)
     want = method
-    if stored is not None and method == "auto" and stored.get("method") in METHOD_COSTS:
+    if stored is not None and method == "auto" and stored.get("method") in BY_METHOD:
         want = stored["method"]  # resume in the store's method
     costed = _costed(ctx, want)
     host = shares_host_memory(devs)

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+from collections.abc import Callable
 
 import jax
 import jax.numpy as jnp
@@ -75,11 +76,8 @@ class Program:
 
     # -- factors --------------------------------------------------------------------------------
     def factors(self, diff, other, state, xb):
-        if self.method == "jvp":
-            return xb
-        if self.method == "jacobian":
-            return jax.vmap(lambda x: self._jacobian_one(diff, other, state, x))(xb)
-        return jax.vmap(lambda x: self._structured_one(diff, other, state, x))(xb)
+        """Per-example derivative representations of a block: the method's `Steps.factors`."""
+        return STEPS[self.method].factors(self, diff, other, state, xb)
 
     def _jacobian_one(self, diff, other, state, x):
         out, vjp = jax.vjp(lambda d: self.example_fn(d, other, state, x), list(diff))
@@ -145,16 +143,10 @@ class Program:
         return tuple(out)
 
     def tile(self, diff, other, state, fa, fb, same: bool = False):
-        """The ``(groups, *tile)`` kernel of two blocks' factors; ``same=True`` when fb is fa
-        (a diagonal tile of K(X, X)), which lets streamed leaves form each chunk once."""
-        if self.method == "jvp":
-            return self._jvp_tile(diff, other, state, fa, fb)
-        b1 = jax.tree_util.tree_leaves(fa)[0].shape[0]
-        b2 = jax.tree_util.tree_leaves(fb)[0].shape[0]
-        return contract(fa, fb, self.kinds, self.selection.group_index(),
-                        len(self.selection.group_names), self.outputs,
-                        tile_shape(self.outputs, b1, b2, self.num_outputs),
-                        widths=self.widths(), same=same)
+        """The ``(groups, *tile)`` kernel of two blocks' factors (the method's `Steps.tile`);
+        ``same=True`` when fb is fa (a diagonal tile of K(X, X)), which lets streamed leaves
+        form each chunk once."""
+        return STEPS[self.method].tile(self, diff, other, state, fa, fb, same)
 
     def _jvp_tile(self, diff, other, state, xa, xb):
         o, a_dim = self.num_outputs, basis_size(self.outputs, self.num_outputs)
@@ -212,3 +204,54 @@ def compiled_single(program: Program):
 def compiled(program: Program):
     """The two jitted steps of ``program``; cached so repeated calls reuse compilations."""
     return jax.jit(program.factors), jax.jit(program.tile, static_argnames="same")
+
+
+# -- each method's two steps ------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True)
+class Steps:
+    """One method's two steps, as functions of its `Program`:
+    ``factors(program, diff, other, state, xb)`` (per-example representations of a block) and
+    ``tile(program, diff, other, state, fa, fb, same)`` (the ``(groups, *tile)`` kernel)."""
+
+    factors: Callable
+    tile: Callable
+
+
+def _jacobian_factors(program: Program, diff, other, state, xb):
+    """Dense per-example Jacobians, one VJP per output direction, vmapped over the block."""
+    return jax.vmap(lambda x: program._jacobian_one(diff, other, state, x))(xb)
+
+
+def _structured_factors(program: Program, diff, other, state, xb):
+    """Per leaf the representation its consumer allows (`Program._structured_one`)."""
+    return jax.vmap(lambda x: program._structured_one(diff, other, state, x))(xb)
+
+
+def _inputs(program: Program, diff, other, state, xb):
+    """NTK-vector products need no factors: the block's inputs."""
+    return xb
+
+
+def _contracted(program: Program, diff, other, state, fa, fb, same: bool):
+    """The contraction of two blocks' factors, leaf by leaf (`contract.contract`)."""
+    b1 = jax.tree_util.tree_leaves(fa)[0].shape[0]
+    b2 = jax.tree_util.tree_leaves(fb)[0].shape[0]
+    return contract(fa, fb, program.kinds, program.selection.group_index(),
+                    len(program.selection.group_names), program.outputs,
+                    tile_shape(program.outputs, b1, b2, program.num_outputs),
+                    widths=program.widths(), same=same)
+
+
+def _products(program: Program, diff, other, state, xa, xb, same: bool):
+    """The tile by NTK-vector products (`Program._jvp_tile`)."""
+    return program._jvp_tile(diff, other, state, xa, xb)
+
+
+#: The two steps of each method, by `Program.method`.
+STEPS = {
+    "jacobian": Steps(_jacobian_factors, _contracted),
+    "structured": Steps(_structured_factors, _contracted),
+    "jvp": Steps(_inputs, _products),
+}
