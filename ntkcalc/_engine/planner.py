@@ -206,6 +206,9 @@ def _traced(req: Request, base: Program):
     return _TRACED[key]
 
 
+traced = _traced  # the package-internal name (`ntkcalc._sketch` uses it)
+
+
 def _blocks(n1: int, n2: int, peak, budget: int) -> int | None:
     """Largest tile side (examples) whose estimated peak fits ``budget``; padding kept small."""
     n = max(n1, n2)
