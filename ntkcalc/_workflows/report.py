@@ -35,6 +35,7 @@ from .._version import __version__
 from .._analysis import _checks, spectrum
 from .._analysis._checks import COND_WARN
 from .._analysis._result import Result
+from .._words import counted
 from . import plots
 from .study import RunAnalysis, _plain
 
@@ -279,8 +280,8 @@ def _class_names(a, desc: RunDescription) -> list[str]:
     if desc.class_names is not None:
         if len(desc.class_names) != a.num_outputs:
             raise ValueError(
-                f"`description.class_names` has {len(desc.class_names)} names; the run has "
-                f"{a.num_outputs} outputs. Pass one name per output.")
+                f"`description.class_names` has {counted(len(desc.class_names), 'name')}; "
+                f"the run has {counted(a.num_outputs, 'output')}. Pass one name per output.")
         return list(desc.class_names)
     return [str(c) for c in range(a.num_outputs)]
 
@@ -347,8 +348,9 @@ def _risk_numbers(c) -> dict:
 
 def _analysis_summary(a, desc, spec, fc, rk, ranks, cautions) -> list[str]:
     d = a.drift
-    run = (f"Data and run: {a.num_train} train / {a.num_test} test {desc.data}, {a.num_outputs} "
-           f"outputs; {desc.model} ({a.num_params:,} parameters, {a.dtype}); checkpoints at steps "
+    run = (f"Data and run: {a.num_train} train / {a.num_test} test {desc.data}, "
+           f"{counted(a.num_outputs, 'output')}; {desc.model} ({a.num_params:,} parameters, "
+           f"{a.dtype}); checkpoints at steps "
            f"{', '.join(map(str, a.steps.tolist()))}")
     run += ("; no forecasts (no learning rate given)." if fc is None else
             f"; forecasts at lr={fc['lr']:.3g} (stability limit {fc['max_stable_lr']:.3g}).")
