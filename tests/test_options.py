@@ -52,6 +52,7 @@ CALLS = {
     ("ntk_features", "outputs"): lambda bad: ntkcalc.ntk_features(_net(), X, k=4, outputs=bad),
     ("ntk_features", "method"): lambda bad: ntkcalc.ntk_features(_net(), X, k=4, method=bad),
     ("KernelArray", "kind"): lambda bad: ntkcalc.KernelArray(np.eye(2), kind=bad, num_outputs=1),
+    ("laziness", "kind"): lambda bad: ntkcalc.laziness(distance=0.1, kind=bad),
     ("run_demo", "scale"): lambda bad: ntkcalc.run_demo("never-written", scale=bad),
 }
 

@@ -6,7 +6,8 @@ Layout of ``<store>/``:
   examples), no compression, fill value NaN so an unwritten tile reads as NaN;
 - ``checksums``: uint64 array (row blocks, column blocks), one chunk per entry; entry (i, j) is
   written only after the tile's chunk(s) and is a BLAKE2b checksum of their bytes (0 = not done);
-- attribute ``"ntkcalc"``: the kernel's fingerprint (see `fingerprint`);
+- attribute ``"ntkcalc"``: the kernel's fingerprint (see `fingerprint`) and the model's number of
+  outputs O (``"num_outputs"``, beside the fingerprint: a trace kernel's shape does not show it);
 - attribute ``"ntkcalc_source"`` (optional): which checkpoint (path, step) and model produced the
   kernel, written by ``ntkcalc kernel`` (`record_source`).
 
@@ -275,7 +276,8 @@ class TileStore:
             if any(True for _ in group.keys()):
                 raise ValueError(NOT_A_STORE.format(store=describe(store)))
             # The fingerprint goes first: a run killed while creating the arrays resumes them.
-            group.attrs[ATTR] = {"fingerprint": fingerprint, "layout": LAYOUT}
+            group.attrs[ATTR] = {"fingerprint": fingerprint, "layout": LAYOUT,
+                                 "num_outputs": int(plan.num_outputs)}
         if "kernel" not in group:
             group.create_array("kernel", shape=shape, chunks=chunks, dtype=plan.dtype,
                                fill_value=np.nan, compressors=None, config=config)
@@ -367,6 +369,16 @@ def read_source(store) -> dict | None:
     except Exception:  # noqa: BLE001 - absent or foreign: `inspect` says which
         return None
     return dict(value) if isinstance(value, dict) else None
+
+
+def read_num_outputs(store) -> int | None:
+    """The model's number of outputs O recorded at creation, or None (a store from before it was
+    recorded, or no store)."""
+    try:
+        value = zarr.open_group(store, mode="r").attrs.get(ATTR, {}).get("num_outputs")
+    except Exception:  # noqa: BLE001 - absent or foreign: `inspect` says which
+        return None
+    return value if isinstance(value, int) and not isinstance(value, bool) and value > 0 else None
 
 
 def open_verified(store, *, what: str = "store") -> tuple[TileStore, dict] | None:

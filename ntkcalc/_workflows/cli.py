@@ -121,10 +121,12 @@ def build_parser() -> argparse.ArgumentParser:
     _run_arguments(drift)
     drift.add_argument("--outputs", choices=OUTPUTS, default="trace")
 
-    report = _subparser(sub, "report", help="Write the HTML and JSON report of a kernel store.",
+    report = _subparser(sub, "report", help="Write the HTML and JSON report of a kernel store "
+                        "or, again, of a run directory ('ntkcalc run').",
                         example="ntkcalc report kernel.zarr --labels data.npz:y")
     report.add_argument("source", help="kernel store written by 'ntkcalc kernel' or "
-                                       "ntk(..., store=...)")
+                                       "ntk(..., store=...), or a run directory written by "
+                                       "'ntkcalc run' or RunAnalysis.write")
     report.add_argument("--labels", metavar="FILE[:KEY]",
                         help="class labels of the store's examples (.npy, or .npz with :KEY); "
                              "the heat map is sorted by class only with them")
@@ -363,7 +365,7 @@ def _demo(args) -> int:
 
 
 def _report(args) -> int:
-    from .report import write_report
+    from .report import source_phrase, write_report
 
     source = os.path.abspath(args.source).rstrip(os.sep)
     out = args.out or f"{source}-report"
@@ -381,8 +383,7 @@ def _report(args) -> int:
 
     made = read_source(args.source)
     if made is not None:
-        print(f"kernel of checkpoint {made.get('checkpoint')} step {made.get('step')}, model "
-              f"{made.get('model')}")
+        print(f"kernel of {source_phrase(made)}")
     print(f"report: {html}\ndata: {data}")
     return 0
 

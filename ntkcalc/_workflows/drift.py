@@ -352,7 +352,7 @@ def _summarize(steps, kernels, squares, specs, aligns, ranks, *, outputs, thresh
     relative = np.array([_relative_change(k, k0) for k in squares])
     cond = np.array([s.condition_number for s in specs])
     verdict = laziness(relative_change=relative, distance=to_initial, steps=steps, spread=spread,
-                       kernel_threshold=threshold)
+                       kernel_threshold=threshold, kind=outputs, precision=kernels[0].dtype)
     lazy = verdict.lazy
     notes = [] if lazy else [MOVED_NOTE]
     ill = cond > COND_WARN
