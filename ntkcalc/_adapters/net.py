@@ -26,6 +26,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .._words import counted
 from .checkpoint import restore
 from .equinox import equinox_parts
 from .errors import NetCallError, constructor_hint, model_kind
@@ -316,7 +317,8 @@ class Net:
         leaves = jax.tree_util.tree_leaves(self.params)
         dtypes = sorted({str(jnp.asarray(leaf).dtype) for leaf in leaves}) if leaves else []
         return (
-            f"Net({self.name}, {len(leaves)} parameter leaves, {self.num_params:,} parameters, "
+            f"Net({self.name}, {counted(len(leaves), 'parameter leaf', 'parameter leaves')}, "
+            f"{counted(self.num_params, 'parameter')}, "
             f"dtype {'/'.join(dtypes) or 'none'})"
         )
 

@@ -312,8 +312,8 @@ def kernel_to_flat(name: str, k, *, num_outputs: int) -> tuple[np.ndarray, bool]
         )
     if o != num_outputs:
         raise ValueError(
-            f"`{name}` is {arr.shape}, a kernel over {o} outputs, but the outputs have "
-            f"{num_outputs} columns: they must agree."
+            f"`{name}` is {arr.shape}, a kernel over {counted(o, 'output')}, but the outputs "
+            f"have {counted(num_outputs, 'column')}: they must agree."
         )
     return square_kernel(name, arr.transpose(0, 2, 1, 3).reshape(n * o, n * o)), False
 

@@ -50,6 +50,7 @@ import numpy as np
 
 from .._engine.options import check_choice
 from .._kind import Kind
+from .._words import counted
 from . import _checks
 from ._result import Result
 from .alignment import kernel_distance
@@ -185,7 +186,8 @@ def _curve(name: str, values, steps):
         return arr, None if np.ndim(values) == 0 else np.arange(arr.size)
     at = np.asarray(steps)
     if at.shape != arr.shape:
-        raise ValueError(f"`{name}` has {arr.size} values but its steps have {at.size}.")
+        raise ValueError(f"`{name}` has {counted(arr.size, 'value')} but its steps have "
+                         f"{at.size}.")
     return arr, at
 
 

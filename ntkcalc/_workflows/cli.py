@@ -19,6 +19,7 @@ from typing import get_args
 import numpy as np
 
 from .._engine.options import METHODS, OUTPUTS
+from .._words import counted
 
 MODEL_SPEC = re.compile(r"^[A-Za-z_][\w.]*:[A-Za-z_][\w.]*$")
 
@@ -283,8 +284,9 @@ def _run_inputs(args, command: str) -> tuple[dict, str]:
     x = _load_array(args.data, args.x, flag="--data", command=command, key_flag="--x")
     y = _load_array(args.data, args.y, flag="--data", command=command, key_flag="--y")
     if len(y) != len(x):
-        raise UsageError(f"ntkcalc {command}: error: --y {args.y!r} has {len(y)} rows but --x "
-                         f"{args.x!r} has {len(x)}; they must be the same examples.")
+        raise UsageError(f"ntkcalc {command}: error: --y {args.y!r} has "
+                         f"{counted(len(y), 'row')} but --x {args.x!r} has {len(x)}; they must "
+                         "be the same examples.")
     if args.x64:
         import jax
 

@@ -40,6 +40,7 @@ from .._analysis.laziness import relative_change as _relative_change
 from .._analysis.spectrum import spectrum
 from .._engine.options import METHODS, OUTPUTS, Method, Outputs, check_choice
 from .._kernel import ntk
+from .._words import counted
 
 #: The laziness threshold on distance and relative change: `laziness.KERNEL_THRESHOLD`.
 DEFAULT_THRESHOLD = KERNEL_THRESHOLD
@@ -164,7 +165,8 @@ def _step_numbers(steps, count: int) -> np.ndarray:
         raise ValueError(f"`steps` must be a 1-D sequence of integers, got {steps!r}.")
     if arr.size != count:
         raise ValueError(
-            f"`steps` has {arr.size} entries but there are {count} Nets. Pass one step per Net."
+            f"`steps` has {counted(arr.size, 'entry', 'entries')} but there are "
+            f"{counted(count, 'Net')}. Pass one step per Net."
         )
     if np.any(np.diff(arr) <= 0):
         raise ValueError(

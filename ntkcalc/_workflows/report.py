@@ -99,8 +99,9 @@ def _load_store(path: str) -> np.ndarray | None:
         )
     if np.isnan(k).any():
         raise ValueError(
-            f"`source`={path!r} is an incomplete kernel store ({int(np.isnan(k).sum())} entries "
-            "not computed): run the same `ntk(..., store=...)` call again to finish it."
+            f"`source`={path!r} is an incomplete kernel store "
+            f"({counted(int(np.isnan(k).sum()), 'entry', 'entries')} not computed): run the "
+            "same `ntk(..., store=...)` call again to finish it."
         )
     return np.einsum("ijaa->ij", k) if k.ndim == 4 else k
 
