@@ -305,7 +305,7 @@ class RunAnalysis(Result):
         ``description`` as they are (arrays included), for `read` and ``write_report(directory)``.
 
         Args:
-            directory: where the three files go.
+            directory: where the files go.
             description: a `RunDescription` of the data, model and training (what the numbers
                 cannot say), or None.
 
