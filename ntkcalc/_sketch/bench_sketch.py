@@ -3,7 +3,7 @@
 Run by ``python -m ntkcalc.bench --sketch``; each measurement in a fresh subprocess
 (``python -m ntkcalc._sketch.bench_sketch <json>``), float32 with matmul precision "highest".
 
-Model: the dataset-scale MLP 784-512-512-512-10 (tanh) of `ntkcalc._tiles.bench_scale`, Gaussian
+Model: the dataset-scale MLP 784-512-512-512-10 (tanh) of `ntkcalc._bench.scale`, Gaussian
 inputs. Task (regenerable): labels are the argmax of a seeded teacher network of the same
 architecture (seed 7) on the same inputs; targets are their one-hot rows.
 
@@ -32,7 +32,7 @@ TOP = 10
 def _task(n: int):
     import numpy as np
 
-    from .._tiles import bench_scale as bs
+    from .._bench import scale as bs
 
     net = bs._net(0)
     x = bs._inputs(n, seed=1)
@@ -149,7 +149,7 @@ def _scale(spec: dict) -> list[dict]:
 
     import ntkcalc
 
-    from .._tiles import bench_scale as bs
+    from .._bench import scale as bs
 
     n, k = spec["n"], spec["k"]
     net = bs._net(0)

@@ -6,7 +6,8 @@ Layout of ``<store>/``:
   examples), no compression, fill value NaN so an unwritten tile reads as NaN;
 - ``checksums``: uint64 array (row blocks, column blocks), one chunk per entry; entry (i, j) is
   written only after the tile's chunk(s) and is a BLAKE2b checksum of their bytes (0 = not done);
-- attribute ``"ntkcalc"``: the kernel's fingerprint (see `fingerprint`);
+- attribute ``"ntkcalc"``: the kernel's fingerprint (see `fingerprint`) and the model's number of
+  outputs O (``"num_outputs"``, beside the fingerprint: a trace kernel's shape does not show it);
 - attribute ``"ntkcalc_source"`` (optional): which checkpoint (path, step) and model produced the
   kernel, written by ``ntkcalc kernel`` (`record_source`).
 
@@ -258,17 +259,17 @@ def checksum(parts) -> int:
 WRITE_CONFIG = {"write_empty_chunks": True}
 
 
-def create_arrays(store, fingerprint: dict, arrays: dict[str, dict]):
+def create_arrays(store, fingerprint: dict, arrays: dict[str, dict], *, record=None):
     """Create a store's group and arrays, or complete a creation that was interrupted; never
     overwrites. ``arrays``: name -> `zarr.Group.create_array` arguments (uncompressed, written
     even when empty). The fingerprint goes first, so a run killed while creating the arrays
     resumes them; a non-empty group without ntkcalc's record is refused (`NOT_A_STORE`).
-    Returns the group."""
+    ``record``: more entries kept beside the fingerprint (e.g. the model's O). Returns the group."""
     group = zarr.open_group(store, mode="a")
     if ATTR not in group.attrs:
         if any(True for _ in group.keys()):
             raise ValueError(NOT_A_STORE.format(store=describe(store)))
-        group.attrs[ATTR] = {"fingerprint": fingerprint, "layout": LAYOUT}
+        group.attrs[ATTR] = {"fingerprint": fingerprint, "layout": LAYOUT, **(record or {})}
     for name, spec in arrays.items():
         if name not in group:
             group.create_array(name, compressors=None, config=WRITE_CONFIG, **spec)
@@ -301,7 +302,7 @@ class TileStore:
             "kernel": dict(shape=shape, chunks=(shape[0], plan.block, plan.block) + shape[3:],
                            dtype=plan.dtype, fill_value=np.nan),
             "checksums": dict(shape=nb, chunks=(1, 1), dtype="uint64", fill_value=0),
-        })
+        }, record={"num_outputs": int(plan.num_outputs)})
         return cls.open(store, plan)
 
     @classmethod
@@ -385,6 +386,16 @@ def read_source(store) -> dict | None:
     except Exception:  # noqa: BLE001 - absent or foreign: `inspect` says which
         return None
     return dict(value) if isinstance(value, dict) else None
+
+
+def read_num_outputs(store) -> int | None:
+    """The model's number of outputs O recorded at creation, or None (a store from before it was
+    recorded, or no store)."""
+    try:
+        value = zarr.open_group(store, mode="r").attrs.get(ATTR, {}).get("num_outputs")
+    except Exception:  # noqa: BLE001 - absent or foreign: `inspect` says which
+        return None
+    return value if isinstance(value, int) and not isinstance(value, bool) and value > 0 else None
 
 
 def open_verified(store, *, what: str = "store") -> tuple[TileStore, dict] | None:
