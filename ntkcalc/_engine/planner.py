@@ -27,7 +27,7 @@ from .checks import (
     compute_dtype,
     output_size,
 )
-from .contract import STREAM_CHUNK_BYTES
+from .contract import STREAM_CHUNK_BYTES, stream_chunk
 from .options import METHODS, OUTPUTS, basis_size, check_choice, tile_shape
 from .program import Program
 from .select import ParamFilter, select
@@ -481,10 +481,15 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
             dense_bytes = a * (p + (sizes[folds[k]] if extra else 0)) * isz
             fpb, side, per_pair = pricing.flops_per_byte, pricing.side, pricing.examples_per_pair
             traffic = 2 * C.factored_pair_elements(a, bsz, t, outputs) * isz * fpb
+            # Streamed chunks are whole multiples of `stream_chunk` features, the last one
+            # zero-padded: the padding is formed too (65 features in chunks of 64 cost 128).
+            width = c + extra
+            cc = stream_chunk(side, a, bsz, r, width, isz)
+            padded = -(-width // cc) * cc / width
             costs = {
                 "dense": alone + form * per_pair + dense_bytes * (2.0 / side + per_pair) * fpb,
                 "factored": fpf + traffic,
-                "streamed": alone + form * 2.0 / side,
+                "streamed": alone + form * padded * 2.0 / side,
             }
             # Streaming is the dense contraction without storing the derivative: it competes
             # with the dense form only, never with a cheaper factored contraction (its
