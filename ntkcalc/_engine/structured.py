@@ -7,9 +7,10 @@ primitive(s) that consume it, looking through structure-preserving ops applied t
 on the output y of each consuming primitive, and the primitive's other operands h are captured on
 the forward pass. One VJP per output direction then gives the cotangents g = ∂f_a/∂y of every probe
 at once, and the leaf's derivative follows from the consumer alone: a VJP of
-``w ↦ primitive(h, chain(w))`` at g (rule outputs are exact for any consumer linear in w). For
-``dot_general`` and ``conv_general_dilated`` the derivative can also stay factored as (h, g), whose
-kernel contribution costs activations² rather than parameters (see `contract`).
+``w ↦ primitive(h, chain(w))`` at g (rule outputs are exact for any consumer linear in w). For a
+factorable rule (dot_general, conv_general_dilated, a row gather) the derivative can also stay
+factored as (h, g), whose kernel contribution costs activations² rather than parameters (see
+`contract`).
 
 Rules live in `rules`, one file each, registered by primitive: ``"dot"`` (dot_general),
 ``"conv"`` (conv_general_dilated, any strides, padding, dilation, feature groups), ``"embed"``
