@@ -195,3 +195,30 @@ def test_scan_accumulation_is_in_the_jacobian_estimate(monkeypatch, steps):
 def test_scan_accumulation_rate_is_measured():
     rate = C.scan_accumulation_rate("float64")
     assert np.isfinite(rate) and rate > 1e6  # entries/s: any machine accumulates over 10⁶/s
+
+
+def test_streamed_estimate_counts_the_padded_chunk(monkeypatch):
+    # y = Σ_t (x_t W + b), W 64×2 with its bias folded: 65 input features. Streamed chunks are
+    # whole multiples of the chunk width, so in chunks of 64 the dense derivative is formed for
+    # 128 features, in one chunk of 65 for 65. With the streaming rate made tiny (dense storage
+    # and factored Grams priced out) the leaf is streamed, and its estimate moves by the padded
+    # formation: 2·A·T·(C + 1)·R matmul FLOPs per example (common practice), times 63/65, re-formed
+    # in each tile (2/side per pair).
+    from ntkcalc._engine import planner
+
+    r = np.random.default_rng(2)
+    params = {"w": r.normal(size=(64, 2)), "b": r.normal(size=(2,))}
+    net = ntkcalc.Net(lambda p, x: (x @ p["w"] + p["b"].reshape(1, 1, 2)).sum(1), params)
+    x = r.normal(size=(4, 16, 64))  # 16 positions: the factored Grams outweigh the derivative
+    for name, value in (("machine_rate", 1e9), ("formation_rate", 1e9), ("stream_rate", 1.0)):
+        monkeypatch.setattr(C, name, lambda *_, value=value: value)
+
+    def row(chunk):
+        monkeypatch.setattr(planner, "stream_chunk", lambda *_: chunk)
+        leaves = {leaf.name: leaf for leaf in ntkcalc.plan(net, x, method="structured").leaves}
+        assert (leaves["w"].representation, leaves["b"].representation) == ("streamed", "folded")
+        return leaves["w"].flops
+
+    pairs, side, form = 4 * 5 / 2, 4, C.formation_flops(2, 1, 16, 65, 2)
+    np.testing.assert_allclose(row(64) - row(65), pairs * form * (128 / 65 - 1) * 2 / side,
+                               rtol=1e-12)
