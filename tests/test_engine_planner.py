@@ -24,7 +24,8 @@ from ntkcalc._tiles import drive, run
 
 # Pinned rates (values of the order of a laptop CPU; invented, not measured).
 FIXED = R.Rates(matmul=5e10, stream=5e9, formation=((1, 1e9), (16, 1e10), (512, 4e10)),
-                call=2e-5, platform="cpu", device_kind="cpu", dtype="float64")
+                call=2e-5, accumulation=3e9, platform="cpu", device_kind="cpu",
+                dtype="float64")
 N = 40
 
 
@@ -187,9 +188,9 @@ def test_pinned_rates_reproduce_the_plan():
     with pytest.raises(ValueError, match="`rates`=3 is not an ntkcalc Rates"):
         ntkcalc.plan(net, x, rates=3)
     with pytest.raises(ValueError, match="`Rates.matmul`=-1"):
-        R.Rates(matmul=-1, stream=1e9, formation=((1, 1e9),), call=0.0)
+        R.Rates(matmul=-1, stream=1e9, formation=((1, 1e9),), call=0.0, accumulation=1e9)
     with pytest.raises(ValueError, match="`Rates.formation`"):
-        R.Rates(matmul=1e9, stream=1e9, formation=(), call=0.0)
+        R.Rates(matmul=1e9, stream=1e9, formation=(), call=0.0, accumulation=1e9)
 
 
 def test_mismatched_plan_is_refused(tmp_path):

@@ -31,9 +31,10 @@ import time
 import jax
 import jax.numpy as jnp
 import numpy as np
+from jax import lax
 
 #: Version of the rates file's layout; a file of another version is measured again.
-FILE_VERSION = 1
+FILE_VERSION = 2
 #: Inner sizes at which the formation rate is measured (powers of two up to `FORMATION_CAP`).
 FORMATION_CAP = 512
 FORMATION_SIZES = tuple(1 << k for k in range(int(math.log2(FORMATION_CAP)) + 1))
@@ -53,6 +54,9 @@ class Rates:
             far below ``matmul``. Sizes are powers of two up to 512 (see `formation_at`).
         call: seconds of the fixed cost of one jitted call (dispatch, arguments, and fetching a
             tiny result to the host): what each factor or tile step costs whatever its FLOPs.
+        accumulation: entries/s at which a reverse pass accumulates the cotangent of a
+            loop-constant weight over the steps of a scan (`structured.loop_accumulation`):
+            memory-bound work the matmul rate does not price.
         platform, device_kind, dtype: what they were measured on ("cpu", "gpu", ...;
             ``jax.Device.device_kind``; "float32" or "float64").
         source: where they came from: "measured", "file <path>" or "given".
@@ -66,13 +70,14 @@ class Rates:
     stream: float
     formation: tuple[tuple[int, float], ...]
     call: float
+    accumulation: float
     platform: str = "cpu"
     device_kind: str = "cpu"
     dtype: str = "float32"
     source: str = "given"
 
     def __post_init__(self):
-        for name in ("matmul", "stream"):
+        for name in ("matmul", "stream", "accumulation"):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):
                 raise ValueError(f"`Rates.{name}`={value!r} must be a positive, finite rate.")
@@ -103,7 +108,8 @@ class Rates:
     def describe(self) -> str:
         """One line: the rates and where they came from."""
         return (f"{self.matmul / 1e9:.3g} GFLOP/s matmul, {self.stream / 1e9:.3g} GB/s "
-                f"streaming, {self.call * 1e3:.3g} ms per call ({self.platform} "
+                f"streaming, {self.call * 1e3:.3g} ms per call, {self.accumulation / 1e9:.3g} G "
+                f"scan accumulations/s ({self.platform} "
                 f"{self.device_kind}, {self.dtype}; {self.source})")
 
     def as_dict(self) -> dict:
@@ -138,6 +144,22 @@ def _call_seconds(dtype: str, repeats: int = 20) -> float:
     return best
 
 
+def _accumulation_rate(dtype: str) -> float:
+    """Entries/s of the gradient of a 16-step scan of ``tanh(x_t @ W)``, W 64×64, vmapped over
+    256 examples, per accumulated entry and step: each step adds an outer product into W's
+    cotangent accumulator."""
+    b, c, s = 256, 64, 16
+    w = jnp.full((c, c), 0.01, dtype)
+
+    def f(w, xs):
+        return lax.scan(lambda acc, x_t: (acc + jnp.tanh(x_t @ w).sum(), None),
+                        jnp.zeros((), w.dtype), xs)[0]
+
+    grads = jax.vmap(jax.grad(f), (None, 0))
+    xs = jnp.ones((b, s, c), dtype)
+    return b * c * c * s / _best_seconds(lambda x: grads(w, x), xs, 3)
+
+
 def _device(device):
     return jax.devices()[0] if device is None else device
 
@@ -147,9 +169,9 @@ def measure_rates(*, dtype: str = "float32", device=None) -> Rates:
 
     matmul: 2·512³ FLOPs of ``jnp.dot`` at precision "highest"; stream: 2·2²⁴·itemsize bytes of
     ``u * 2``; formation: the batched GEMM of `Rates.formation` at every power-of-two inner size
-    up to 512; call: a jitted sum of 8 arguments of 8 elements, fetched to the host. Each is the
-    fastest of a few timed calls
-    after a warm-up (compilation excluded).
+    up to 512; call: a jitted sum of 8 arguments of 8 elements, fetched to the host;
+    accumulation: the gradient of a 16-step scan (`Rates.accumulation`). Each is the fastest of
+    a few timed calls after a warm-up (compilation excluded).
     """
     dev = _device(device)
     if dtype == "float64" and not jax.config.jax_enable_x64:
@@ -169,8 +191,9 @@ def measure_rates(*, dtype: str = "float32", device=None) -> Rates:
             seconds = _best_seconds(lambda u, h=h: jnp.matmul(u, h, precision="highest"), g, 3)
             formation.append((t, 2.0 * 32 * 1280 * t * 64 / seconds))
         call = _call_seconds(dtype)
-    return Rates(matmul, stream, tuple(formation), call, dev.platform, dev.device_kind, dtype,
-                 "measured")
+        accumulation = _accumulation_rate(dtype)
+    return Rates(matmul, stream, tuple(formation), call, accumulation, dev.platform,
+                 dev.device_kind, dtype, "measured")
 
 
 def rates_file() -> str | None:
@@ -262,6 +285,6 @@ def check_rates(rates) -> Rates:
     if not isinstance(rates, Rates):
         raise ValueError(
             f"`rates`={rates!r} is not an ntkcalc Rates: pass Rates(matmul=..., stream=..., "
-            "formation=((t, FLOP/s), ...), call=...), measure_rates(), or None for this "
-            "machine's rates.")
+            "formation=((t, FLOP/s), ...), call=..., accumulation=...), measure_rates(), or None "
+            "for this machine's rates.")
     return rates
