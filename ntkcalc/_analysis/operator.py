@@ -81,15 +81,17 @@ def _factor_steps(program: Program):
                  if kind in ("factored", "streamed") and an.uses[k][0].rule == "embed" else 0
                  for k, kind in enumerate(program.kinds))
 
+    own = program.outputs == "trace"  # Σ_a J_a J_aᵀ: each probe keeps its own output a
+
     @jax.jit
     def pull(reps, v_b):  # v_b in the compute dtype
-        cot = products.lift(v_b, program.outputs, a_dim)
-        return products.factor_pull(reps, program.kinds, cot, rows)
+        cot = v_b.T if own else products.lift(v_b, program.outputs, a_dim)
+        return products.factor_pull(reps, program.kinds, cot, rows, own=own)
 
     @jax.jit
     def push(reps, ws):
-        return products.lower(products.factor_push(reps, program.kinds, ws, rows),
-                              program.outputs, a_dim)
+        y = products.factor_push(reps, program.kinds, ws, rows, own=own)
+        return y.sum(0).T if own else products.lower(y, program.outputs, a_dim)
 
     return compiled(program)[0], pull, push
 

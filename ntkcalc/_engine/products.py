@@ -128,9 +128,42 @@ def lower(outs, outputs: str, a_dim: int):
 
 
 # -- from structured factors ----------------------------------------------------------------------
-def factor_pull(reps, kinds, cot, rows=()):
+# Probes of ``factor_pull`` / ``factor_push``: ``cot`` (S, b, A), general cotangents in direction
+# space, or with ``own=True`` ``cot`` (k, b), the S = A·k probes (a, c) = v_c ⊗ e_a of the "trace"
+# operator (ordered a-major) whose pushes keep only direction a: (A, k, b). The own form needs
+# no contraction over directions, only broadcasts (A× fewer FLOPs outside the GEMMs), and
+# batched small matmuls over examples are avoided throughout (far below matmul speed on CPU).
+def _weighted(cot, g, own: bool):
+    """``u[B, i, t, s, R] = Σ_a cot[s, i, a] g[i, a, B, t, R]`` (own: ``cot[c, i] g[i, a, ...]``
+    with s = (a, c)), as (B, b, T, S, R)."""
+    b, a, nb, t, r = g.shape
+    if own:
+        u = g[:, :, :, :, None, :] * cot.T[:, None, None, None, :, None]  # (i, a, B, t, c, R)
+        u = jnp.transpose(u, (2, 0, 3, 1, 4, 5))
+    else:
+        u = jnp.sum(g[:, :, :, :, None, :] * jnp.transpose(cot, (1, 2, 0))[:, :, None, None, :,
+                                                                           None], axis=1)
+        u = jnp.transpose(u, (1, 0, 2, 3, 4))  # (B, i, t, s, R)
+    return u.reshape(nb, b, t, -1, r)
+
+
+def _contracted(z, g, own: bool):
+    """``y[s, i, a] = Σ_{B,t,R} z[B, i, t, s, R] g[i, a, B, t, R]`` as (S, b, A); own: only
+    a = the probe's own direction, as (A, k, b)."""
+    nb, b, t, s, r = z.shape
+    a = g.shape[1]
+    if own:
+        z = jnp.transpose(z.reshape(nb, b, t, a, s // a, r), (1, 3, 0, 2, 4, 5))  # (i,a,B,t,c,R)
+        y = jnp.sum(z * g[:, :, :, :, None, :], axis=(2, 3, 5))  # (i, a, c)
+        return jnp.transpose(y, (1, 2, 0))
+    z = jnp.transpose(z, (1, 0, 2, 3, 4))[:, None]  # (i, 1, B, t, s, R)
+    y = jnp.sum(z * g[:, :, :, :, None, :], axis=(2, 3, 5))  # (i, a, s)
+    return jnp.transpose(y, (2, 0, 1))
+
+
+def factor_pull(reps, kinds, cot, rows=(), *, own: bool = False):
     """``Jᵀ c`` per leaf from one batch's factors ``reps`` (as `Program.factors` returns them) for
-    probes ``cot`` (S, b, A). Per leaf: (B, C, S, R) for a factored (or streamed) leaf,
+    the probes ``cot`` (above). Per leaf: (B, C, S, R) for a factored (or streamed) leaf,
     (S, B, V, R) for looked-up rows (``rows[k]`` = V, the table's rows), (S, P) for a dense
     one, None for unused and folded leaves (a folded bias is input 1 of its layer's factors)."""
     out = []
@@ -139,10 +172,14 @@ def factor_pull(reps, kinds, cot, rows=()):
             out.append(None)
         elif kind == "dense":
             j = rep.reshape(rep.shape[0], rep.shape[1], -1)
-            out.append(jnp.einsum("sia,iap->sp", cot, j, precision=HIGHEST))
+            if own:  # per direction a: (k × b) @ (b × P)
+                w = jnp.einsum("ci,iap->acp", cot, j, precision=HIGHEST)
+                out.append(w.reshape(-1, w.shape[-1]))
+            else:
+                out.append(jnp.einsum("sia,iap->sp", cot, j, precision=HIGHEST))
         else:
             h, g = rep
-            u = jnp.einsum("sia,iaBtR->BitsR", cot, g, precision=HIGHEST)  # Σ_a c_ia g_iat
+            u = _weighted(cot, g, own)
             nb, b, t, s, r = u.shape
             if jnp.issubdtype(h.dtype, jnp.integer):
                 idx = _row_index(h, rows[k])  # (B, b·T)
@@ -157,31 +194,33 @@ def factor_pull(reps, kinds, cot, rows=()):
     return out
 
 
-def factor_push(reps, kinds, ws, rows=()):
-    """``J w`` (S, b, A) of one batch from its factors ``reps`` and the per-leaf ``ws`` that
-    `factor_pull` returns (summed over batches)."""
+def factor_push(reps, kinds, ws, rows=(), *, own: bool = False):
+    """``J w`` of one batch from its factors ``reps`` and the per-leaf ``ws`` that `factor_pull`
+    returns (summed over batches): (S, b, A), or with ``own`` (A, k, b)."""
     total = None
     for k, (rep, kind, w) in enumerate(zip(reps, kinds, ws, strict=True)):
         if kind in ("unused", "folded"):
             continue
         if kind == "dense":
             j = rep.reshape(rep.shape[0], rep.shape[1], -1)
-            y = jnp.einsum("iap,sp->sia", j, w, precision=HIGHEST)
+            if own:
+                y = jnp.einsum("iap,acp->aci", j, w.reshape(j.shape[1], -1, w.shape[-1]),
+                               precision=HIGHEST)
+            else:
+                y = jnp.einsum("iap,sp->sia", j, w, precision=HIGHEST)
         else:
             h, g = rep
             b, _, nb, t, r = g.shape
             if jnp.issubdtype(h.dtype, jnp.integer):
                 w = jnp.pad(w, ((0, 0), (0, 0), (0, 1), (0, 0)))  # the zero row
                 z = w[:, jnp.arange(nb)[:, None], _row_index(h, rows[k])]  # (S, B, b·T, R)
-                z = z.reshape(z.shape[0], nb, b, t, r)
-                y = jnp.einsum("sBitR,iaBtR->sia", z, g, precision=HIGHEST)
+                z = jnp.transpose(z.reshape(z.shape[0], nb, b, t, r), (1, 2, 3, 0, 4))
             else:
                 s = w.shape[2]
                 hm = jnp.transpose(h, (1, 0, 2, 3)).reshape(nb, b * t, h.shape[-1])
                 z = lax.dot_general(hm, w.reshape(nb, -1, s * r), (((2,), (1,)), ((0,), (0,))),
-                                    precision=HIGHEST)  # (B, b·T, S·R)
-                y = jnp.einsum("BitsR,iaBtR->sia", z.reshape(nb, b, t, s, r), g,
-                               precision=HIGHEST)
+                                    precision=HIGHEST).reshape(nb, b, t, s, r)
+            y = _contracted(z, g, own)
         total = y if total is None else total + y
     return total
 
