@@ -259,11 +259,12 @@ def ntk_operator(
       when they fit in half of ``memory``; otherwise they are recomputed per batch in every
       product (two backward passes per product).
     - ``"auto"``: ``"factors"`` when they can be cached, else ``"products"``. The rule: a cached
-      product does the GEMMs of one layer-wise backward pass (≈ 4·N·A·P) while "products" runs
-      the network forward and backward, VJP and JVP (≈ 3× that, measured 2.5–4× on the benchmark
-      MLP, docs/performance.md), and computing the factors costs about one product; uncached,
-      "factors" does two backward passes per product and no longer wins, so "products" is used
-      (except for a model with ``jax.custom_vjp``, which has no forward mode).
+      product is the GEMMs of the layers' parameter derivatives alone (≈ 4·N·A·P FLOPs), while
+      "products" also runs the network forward and backward through every layer in both the
+      VJP and the JVP (measured 2.1× slower per product on the benchmark MLP,
+      docs/performance.md), and computing the factors costs about one product; uncached,
+      "factors" adds two backward passes to every product and no longer wins, so "products" is
+      used (except for a model with ``jax.custom_vjp``, which has no forward mode).
 
     Validation, the ``params`` filter and the ``dtype`` policy are those of `ntkcalc.ntk`
     (float32 unless x64 is on or ``dtype="float64"``, which runs every product of this operator
