@@ -14,6 +14,7 @@ from helpers import ZOO, assert_close, f64, reduce_mode, reference_full
 
 import ntkcalc
 from ntkcalc._adapters.net import Net
+from ntkcalc._analysis import operator as operator_module
 from ntkcalc._analysis.hutchpp import estimate_trace
 from ntkcalc._analysis.operator import NTKOperator, ntk_operator
 from ntkcalc._analysis.ridge import ridge_fit
@@ -59,6 +60,21 @@ def test_every_mode_and_path_matches_reference(name):
             got = op @ np.eye(op.shape[0])
             assert_close(got, want)
             assert_close(got, dense)
+
+
+def test_convolutions_dense_or_factored(monkeypatch):
+    # The zoo CNN's convolutions have dense derivatives smaller than their factors, so the
+    # operator forms them once (`representations`); with the planner's own representations
+    # (streamed: factors over image patches) the products are the same. Reference: jacrev, 1e-10.
+    net, x, full = case("cnn")
+    op = ntk_operator(net, x, method="factors", batch=3)
+    assert op._program.kinds[1::2][:3] == ("dense",) * 3  # the three conv kernels
+    monkeypatch.setattr(operator_module, "representations", lambda plan, itemsize: (
+        plan.program, sum(leaf.bytes_per_example for leaf in plan.leaves)))
+    for outputs in ("trace", "full"):
+        op = ntk_operator(net, x, outputs=outputs, method="factors", batch=3)
+        assert op._program.kinds[1::2][:3] == ("streamed",) * 3
+        assert_close(op @ np.eye(op.shape[0]), as_matrix(full, outputs))
 
 
 def test_params_filter_and_column_groups():

@@ -10,6 +10,7 @@ factors). Memory is one parameter-sized vector per probe (plus the factors when 
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import functools
 import math
 import warnings
@@ -20,6 +21,7 @@ import scipy.sparse.linalg as spla
 
 from .._engine import cost as C
 from .._engine import products
+from .._engine import structured as st
 from .._engine.checks import check_inputs
 from .._engine.options import (
     OPERATOR_OUTPUTS,
@@ -96,6 +98,33 @@ def _factor_steps(program: Program):
     return compiled(program)[0], pull, push
 
 
+def representations(plan, *, itemsize: int) -> tuple[Program, float]:
+    """The program the "factors" path runs, and its factor bytes per example.
+
+    Each leaf keeps the representation the planner chose for the kernel, except that a
+    factored (or streamed) layer is formed dense once, from its factors, when its dense
+    derivative (A·B·C·R values per example) is no larger than its factors (B·T·C + A·B·T·R):
+    then every product is also T× cheaper (2·A·B·C·R against 2·A·B·T·C·R FLOPs per example and
+    direction), e.g. a convolution over T positions with few input channels. A dense layer of
+    an MLP (T = 1) stays factored: C + A·R values against A·C·R."""
+    program = plan.program
+    an = program.analysis
+    a = basis_size(program.outputs, program.num_outputs)
+    kinds, total = list(program.kinds), 0.0
+    for k, kind in enumerate(program.kinds):
+        if kind not in ("factored", "streamed"):
+            total += plan.leaves[k].bytes_per_example
+            continue
+        use = an.uses[k][0]
+        bsz, t, c, r = st.factored_sizes(use)
+        c += 1 if program.folds and program.folds[k] is not None else 0
+        factors = bsz * t * (1 if use.rule == "embed" else c) + a * bsz * t * r
+        dense = a * bsz * c * r
+        kinds[k] = "dense" if dense <= factors else "factored"
+        total += min(dense, factors) * itemsize
+    return dataclasses.replace(program, kinds=tuple(kinds)), total
+
+
 def _add(acc, w):
     return w if acc is None else jax.tree_util.tree_map(lambda a, b: a + b, acc, w)
 
@@ -121,7 +150,7 @@ class NTKOperator(spla.LinearOperator):
         super().__init__(dtype=np.dtype(np.float64), shape=(size, size))
         self.matvecs = 0
         self._req, self._precision, self._budget = request, dtype, budget
-        self._program = plan.program
+        self._program, _ = representations(plan, itemsize=request.dtype.itemsize)
         self._factors = None
         if method == "products":
             jvp_program = Program(plan.program.call, plan.program.treedef,
@@ -129,7 +158,7 @@ class NTKOperator(spla.LinearOperator):
                                   ("dense",) * len(request.diff))
             self._pull, self._push = _product_steps(jvp_program)
         else:
-            self._factor_step, self._pull, self._push = _factor_steps(plan.program)
+            self._factor_step, self._pull, self._push = _factor_steps(self._program)
         self._param_values = sum(int(np.prod(np.shape(d))) for d in request.diff)
 
     def _scope(self):
@@ -251,8 +280,9 @@ def ntk_operator(
       Sohl-Dickstein & Schoenholz, ICML 2022, arXiv:2206.08720); the network runs forward and
       backward in every product. Needs forward-mode derivatives (no ``jax.custom_vjp``).
     - ``"factors"``: from the structured per-example factors `ntkcalc.ntk` uses (per dense or
-      conv layer its input h and output cotangents g; other leaves their formed derivatives, the
-      same representation per leaf the planner picks for the kernel). For a factored leaf
+      conv layer its input h and output cotangents g; other leaves their formed derivatives;
+      a layer whose dense derivative is no larger than its factors, e.g. a convolution with few
+      input channels, formed dense once, see `representations`). For a factored leaf
       ``Jᵀ v = Σ_{i,t} h_it ⊗ (Σ_a v_ia g_iat)`` and ``(J W)_ia = Σ_t h_itᵀ W g_iat``: each
       product is a few large GEMMs, about 4·N·A·P FLOPs for A output directions and P
       parameters, with no pass through the network. The factors are computed once and cached
@@ -305,8 +335,8 @@ def ntk_operator(
                 "jax.custom_vjp function, which has none: use method='factors' (or 'auto')."
             )
         batches = math.ceil(x.shape[0] / min(batch, x.shape[0]))
-        factor_bytes = (sum(leaf.bytes_per_example for leaf in plan.leaves)
-                        * batches * min(batch, x.shape[0]))
+        per_example = representations(plan, itemsize=req.dtype.itemsize)[1]
+        factor_bytes = per_example * batches * min(batch, x.shape[0])
         cache = factor_bytes <= budget / 2
         if method == "auto":
             method = "factors" if cache or no_forward else "products"
