@@ -18,8 +18,8 @@ The flow is one-way; each public name below says where it lives:
 from ._version import __version__ as __version__
 
 from ._adapters.checkpoint import checkpoint_steps as checkpoint_steps
-from ._adapters.checkpoint import load_checkpoint as load_checkpoint
 from ._adapters.net import Net as Net
+from ._adapters.net import load_checkpoint as load_checkpoint
 from ._analysis.alignment import TaskSpectrum as TaskSpectrum
 from ._analysis.alignment import alignment as alignment
 from ._analysis.alignment import cka as cka

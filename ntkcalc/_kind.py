@@ -15,9 +15,12 @@ array, which an analysis treats as a kernel of unknown kind.
 
 from __future__ import annotations
 
-from typing import Literal
+from typing import Literal, get_args
 
 import numpy as np
+
+from ._engine.options import check_choice
+from ._words import counted
 
 Kind = Literal["full", "trace", "diagonal", "logit-sum", "per-output"]
 
@@ -47,8 +50,7 @@ class KernelArray(np.ndarray):
 
     def __new__(cls, values, *, kind: Kind, num_outputs: int, note: str | None = None):
         obj = np.asarray(values).view(cls)
-        if kind not in KIND_NDIM:
-            raise ValueError(f"`kind`={kind!r} is not known: use one of {list(KIND_NDIM)}.")
+        check_choice("kind", kind, get_args(Kind))
         obj.kind, obj.num_outputs, obj.note = kind, int(num_outputs), note
         return obj
 
@@ -112,7 +114,7 @@ def describe(kind: str | None, num_outputs: int | None) -> str:
     """A short phrase naming a kernel kind and the call that makes it."""
     if kind is None:
         return "a plain array of unknown kind"
-    over = "" if num_outputs is None else f" over {num_outputs} output(s)"
+    over = "" if num_outputs is None else f" over {counted(num_outputs, 'output')}"
     if kind == "per-output":
         return f"the per-output kernel (K of Θ = K ⊗ I_{num_outputs or 'O'})"
     return f"the {kind!r} kernel{over} (ntkcalc.ntk(..., outputs={kind!r}))"

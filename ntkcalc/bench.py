@@ -10,7 +10,7 @@ rate, the fastest its chosen method could run on this machine.
 
 Rows: the MLP 784-512-512-512-10 (0.93M parameters), a CNN with 3 conv layers (0.33M), a
 transformer encoder block on 16 tokens, a CNN on 32×32×3 images (321,290), four encoder blocks
-as an nn.scan over layers, an LSTM over 32 steps, the dataset-scale rows of `ntkcalc._tiles.bench_scale`
+as an nn.scan over layers, an LSTM over 32 steps, the dataset-scale rows of `ntkcalc._bench.scale`
 (``--scale``) and the sketched-features rows of `ntkcalc._sketch.bench_sketch` (``--sketch``).
 """
 
@@ -346,7 +346,7 @@ def main(argv: list[str] | None = None) -> int:
     if not args.quick and not args.model:
         table.append(jacobian_memory_row())
     if args.scale:
-        from ._tiles import bench_scale
+        from ._bench import scale as bench_scale
 
         for r in bench_scale.memory_budget() + bench_scale.device_throughput():
             print(r)

@@ -54,7 +54,7 @@ def test_labels_accept_integer_and_one_hot():
     same, fmt2 = _checks.labels("y", np.eye(3)[[0, 2, 1]], **kw)
     assert fmt2 == "one-hot" and np.array_equal(same, onehot)
     assert _checks.labels("y", np.full((3, 3), 0.5), **kw) == (None, None)
-    with pytest.raises(ValueError, match=r"integer labels in \[0, 3\] .* 3 output\(s\)"):
+    with pytest.raises(ValueError, match=r"integer labels in \[0, 3\] .* 3 outputs:"):
         _checks.labels("y", np.array([0, 3, 1]), **kw)
 
 

@@ -243,7 +243,7 @@ def test_repr_is_short(problem):
         (dict(k_train=np.ones((12, 11))), "must be \\(N, N\\) or|square"),
         (dict(y_train=np.full(12, 5)), "integer labels in \\[5, 5\\]"),
         (dict(y_train=np.full((12, 2), 0.3), loss="cross-entropy"), "needs classification"),
-        (dict(loss="hinge"), "`loss` must be"),
+        (dict(loss="hinge"), "`loss`='hinge' is not known"),
         (dict(k_test_train=np.zeros((5, 12, 2, 2))), "go together"),
         (dict(k_test_train=np.zeros((5, 11, 2, 2)), f0_test=np.zeros((5, 2))),
          "`k_test_train` is \\(5, 11, 2, 2\\)"),

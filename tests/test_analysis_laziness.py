@@ -193,6 +193,13 @@ def test_verdict_from_curves_names_the_first_failing_step():
     assert v.lazy and v.within_spread == ("relative_change",) and v.beyond_spread is False
     assert "the outputs follow the forecast" in v.sentence
     json.dumps(laziness(relative_change=0.01, spread=spread).to_dict())
+    # the kind and precision of the kernels compared are carried and shown
+    v = laziness(relative_change=0.01, kind="trace", precision=np.float32)
+    assert (v.kind, v.precision) == ("trace", "float32")
+    assert repr(v).endswith("kind='trace', precision='float32')")
+    assert laziness(distance=0.01).kind is None and laziness(distance=0.01).precision is None
+    with pytest.raises(ValueError, match="`kind`='exact' is not known"):
+        laziness(distance=0.1, kind="exact")
     with pytest.raises(ValueError, match="at least one criterion"):
         laziness()
     with pytest.raises(ValueError, match="`kernel_threshold` must be a finite number > 0"):

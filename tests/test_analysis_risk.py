@@ -150,7 +150,7 @@ def test_agreeing_estimates_keep_the_gcv_ridge(digits):
     np.testing.assert_allclose(risk(k, labels, ridges=np.logspace(-2, 3, 11)).loo, est.loo,
                                rtol=1e-12)
     tagged = risk(ntkcalc.KernelArray(k, kind="trace", num_outputs=10), y[:200], ridges=1.0)
-    assert "'trace' kernel over 10 output(s)" in tagged.kernel
+    assert "'trace' kernel over 10 outputs" in tagged.kernel
 
 
 def test_indefinite_ridges_warn_like_ridge_fit_refuses():

@@ -18,7 +18,8 @@ from flax import nnx, serialization
 from helpers import MLP, ResBlockNNX, assert_close, f64, reduce_mode, reference_full
 
 import ntkcalc
-from ntkcalc._adapters.checkpoint import checkpoint_steps, load_checkpoint
+from ntkcalc._adapters.checkpoint import checkpoint_steps
+from ntkcalc._adapters.net import load_checkpoint
 
 X = np.random.default_rng(0).normal(size=(3, 5))
 

@@ -17,7 +17,6 @@ The numbers they write are checked against independent computation:
 from __future__ import annotations
 
 import functools
-import inspect
 import json
 import os
 
@@ -127,6 +126,12 @@ def test_run_writes_the_report_with_independently_checked_numbers(run, cli):
     # the report says which checkpoints, model and data it came from
     assert os.path.abspath(f"{tmp}/ckpt") in page and "cli_digits_models:Mlp" in page
     assert "digits.npz" in page
+    # `ntkcalc report` on the run directory renders the same report from the saved result
+    status, stdout, err = cli("report", out)
+    assert status == 0, err
+    with open(f"{out}-report/report.json", encoding="utf-8") as fh, \
+            open(f"{out}/report.json", encoding="utf-8") as first:
+        assert json.load(fh) == json.load(first)
 
 
 def test_drift_writes_table_figure_and_verdict(run, cli):
@@ -151,6 +156,7 @@ def test_kernel_store_records_provenance_and_loads_back(run, cli):
     assert status == 0, err
     view = ntkcalc.open_kernel(store)
     assert view.kind == "trace" and view.shape == (N_TRAIN, N_TRAIN)
+    assert view.num_outputs == 10  # digits' ten classes, recorded although the trace hides O
     assert view.source == {"checkpoint": os.path.abspath(f"{tmp}/ckpt"), "step": SAVED[-1],
                            "item": None, "subtree": None, "model": "cli_digits_models:Mlp"}
     # the latest checkpoint's kernel, against ntk on the Net built by hand and dense jacrev
@@ -165,27 +171,30 @@ def test_kernel_store_records_provenance_and_loads_back(run, cli):
     assert sorted(os.listdir(store)) == before  # nothing written inside the store
     assert os.path.isfile(f"{store}-report/report.html")
     assert f"step {SAVED[-1]}" in stdout and "cli_digits_models:Mlp" in stdout
+    # the report itself names the checkpoint, step and model the kernel came from
+    with open(f"{store}-report/report.html", encoding="utf-8") as fh:
+        page = fh.read()
+    with open(f"{store}-report/report.json", encoding="utf-8") as fh:
+        assert json.load(fh)["kernel_source"] == view.source
+    assert f"checkpoint {os.path.abspath(f'{tmp}/ckpt')} step {SAVED[-1]}" in page
+    assert "model cli_digits_models:Mlp" in page
     status, _, err = cli("report", store, "--out", f"{store}/inside")
     assert status == 2 and "inside the store" in err and len(err.strip().splitlines()) == 1
 
     np.save(f"{tmp}/labels.npy", data["labels"])
     status, _, err = cli("report", store, "--labels", f"{tmp}/digits.npz:y", "--out",
                          f"{tmp}/labelled")
-    if "labels" in inspect.signature(ntkcalc.write_report).parameters:
-        assert status == 0, err
-        with open(f"{tmp}/labelled/report.json", encoding="utf-8") as fh:
-            heat = json.load(fh)["sections"]["heatmap"]
-        # mean kernel entry of each pair of classes, by its definition, in numpy
-        onehot = np.eye(10)[data["labels"]]
-        counts = onehot.sum(axis=0)
-        k = kernels[SAVED[-1]]
-        assert heat["class_counts"] == np.bincount(data["labels"]).tolist()
-        (means,) = heat["block_means"].values()
-        assert_close(np.array(means), onehot.T @ k @ onehot / np.outer(counts, counts),
-                     rtol=1e-10)
-    else:  # this write_report cannot sort by class: said in one line, nothing written
-        assert status == 2 and "--labels" in err and len(err.strip().splitlines()) == 1
-        assert not os.path.exists(f"{tmp}/labelled")
+    assert status == 0, err
+    with open(f"{tmp}/labelled/report.json", encoding="utf-8") as fh:
+        heat = json.load(fh)["sections"]["heatmap"]
+    # mean kernel entry of each pair of classes, by its definition, in numpy
+    onehot = np.eye(10)[data["labels"]]
+    counts = onehot.sum(axis=0)
+    k = kernels[SAVED[-1]]
+    assert heat["class_counts"] == np.bincount(data["labels"]).tolist()
+    (means,) = heat["block_means"].values()
+    assert_close(np.array(means), onehot.T @ k @ onehot / np.outer(counts, counts),
+                 rtol=1e-10)
 
 
 def test_loss_choices_are_analyse_runs():

@@ -114,7 +114,7 @@ def test_tanh_mlp_kernel_moves(moving_run):
     # the one verdict, from the numbers above (ntkcalc.laziness)
     assert result.laziness == ntkcalc.laziness(
         relative_change=result.relative_change, distance=result.distance_to_initial,
-        steps=result.steps)
+        steps=result.steps, kind="trace", precision="float64")
     assert result.verdict == result.laziness.sentence and result.laziness.spread is None
     # centered alignment by its definition (HKH, HYYᵀH Frobenius cosine), at the last step
     h = np.eye(6) - 1 / 6
@@ -141,6 +141,9 @@ def test_table_json_plot_and_repr(moving_run):
     loaded = json.loads(result.to_json())
     assert loaded["verdict"] == result.verdict and loaded["table"]["velocity"][0] is None
     assert loaded["laziness"]["sentence"] == result.verdict
+    # the verdict says which kernels it compared: the 'full' kernels drift computed, in float64
+    assert (loaded["laziness"]["kind"], loaded["laziness"]["precision"]) == ("full", "float64")
+    assert "kind='full', precision='float64'" in repr(result.laziness)
     assert loaded["laziness"]["relative_change"] == pytest.approx(result.relative_change.max())
     np.testing.assert_allclose(loaded["table"]["distance_to_initial"], result.distance_to_initial)
     ax = result.plot()

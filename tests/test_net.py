@@ -190,3 +190,11 @@ def test_flax_models_where_a_net_belongs():
         ntkcalc.ntk(model, x)
     with pytest.raises(TypeError, match=r"`model` must be a flax nnx Module, got MLP.*from_linen"):
         ntkcalc.Net.from_nnx(module)
+
+
+def test_repr_counts_in_the_right_number():
+    one = ntkcalc.Net(lambda p, x: x * p, np.ones((), np.float64))
+    assert repr(one) == "Net(net, 1 parameter leaf, 1 parameter, dtype float64)"
+    two = ntkcalc.Net(lambda p, x: x @ p["w"] + p["b"],
+                      {"w": np.ones((3, 2), np.float32), "b": np.zeros(2, np.float32)})
+    assert repr(two) == "Net(net, 2 parameter leaves, 8 parameters, dtype float32)"

@@ -26,6 +26,7 @@ from helpers import assert_close, reduce_mode, reference_full
 from sklearn.datasets import load_iris
 
 import ntkcalc
+from ntkcalc._tiles.store import record_source
 from ntkcalc._workflows.report import SECTIONS, RunDescription, write_report
 from ntkcalc._workflows.study import analyse_run
 
@@ -219,7 +220,11 @@ def test_bad_arguments(run, tmp_path):
     with pytest.raises(FileNotFoundError, match="kernel store"):
         write_report(tmp_path)
     analysis.write(tmp_path / "run")
-    with pytest.raises(ValueError, match="run directory"):
+    (tmp_path / "run" / "result.npz").unlink()  # as written before results were saved whole
+    with pytest.raises(ValueError, match="run directory written before results were saved"):
+        write_report(tmp_path / "run")
+    (tmp_path / "run" / "result.npz").write_bytes(b"not a zip")
+    with pytest.raises(ValueError, match="result.npz' is damaged"):
         write_report(tmp_path / "run")
     with pytest.raises(ValueError, match="`out`"):
         write_report(analysis)
@@ -235,6 +240,60 @@ def test_bad_arguments(run, tmp_path):
         RunDescription(details=(("only a label",),))
     with pytest.raises(TypeError, match="`title`"):
         RunDescription(title=3)
+
+
+def same(a, b, where: str = "result") -> None:
+    """Every field of two results equal, recursively: arrays by dtype, shape and value (NaN equal
+    to NaN), numbers by type and value."""
+    assert type(a) is type(b), f"{where}: {type(a).__name__} vs {type(b).__name__}"
+    if dataclasses.is_dataclass(a):
+        for f in dataclasses.fields(a):
+            same(getattr(a, f.name), getattr(b, f.name), f"{where}.{f.name}")
+    elif isinstance(a, np.ndarray | np.generic):
+        assert (a.dtype, np.shape(a)) == (b.dtype, np.shape(b)), where
+        np.testing.assert_array_equal(a, b, err_msg=where, strict=True)
+    elif isinstance(a, tuple | list):
+        assert len(a) == len(b), where
+        for i, (u, v) in enumerate(zip(a, b, strict=True)):
+            same(u, v, f"{where}[{i}]")
+    elif isinstance(a, dict):
+        assert list(a) == list(b), where
+        for k in a:
+            same(a[k], b[k], f"{where}[{k!r}]")
+    elif isinstance(a, float) and math.isnan(a):
+        assert math.isnan(b), where
+    else:
+        assert a == b, f"{where}: {a!r} vs {b!r}"
+
+
+def test_written_run_reads_back_whole(run, tmp_path):
+    # RunAnalysis.write → RunAnalysis.read: every field of the typed result as it was (arrays by
+    # dtype, shape and value); write_report(run directory) renders the same report again.
+    analysis = run[0]
+    html_path, json_path = analysis.write(tmp_path / "run", description=DESCRIPTION)
+    back = ntkcalc.RunAnalysis.read(tmp_path / "run")
+    same(back, analysis)
+    assert back.drift.kernels.shape == analysis.drift.kernels.shape  # the kernels too
+    again_html, again_json = write_report(tmp_path / "run", out=tmp_path / "again")
+    assert _text(again_json) == _text(json_path)  # the saved description is used again
+    assert _text(again_html) == _text(html_path)
+    with pytest.raises(FileNotFoundError, match="`directory`=.*holds no result.npz"):
+        ntkcalc.RunAnalysis.read(tmp_path / "again")
+
+
+def test_overview_figure_labels_are_whole(run):
+    from test_plots import clipped_labels
+
+    assert clipped_labels(run[0].plot()) == []
+
+
+def test_one_output_is_said_in_the_singular(run, tmp_path):
+    a = run[0]
+    one = dataclasses.replace(a, num_outputs=1, labels=None)
+    _, doc = _write(one, tmp_path, description=None)
+    assert ", 1 output;" in doc["summary"][0]
+    _, doc = _write(a, tmp_path / "three")
+    assert ", 3 outputs;" in doc["summary"][0]
 
 
 def test_kernel_store_gets_spectrum_and_heatmap(tmp_path):
@@ -255,6 +314,7 @@ def test_kernel_store_gets_spectrum_and_heatmap(tmp_path):
     assert re.findall(r'<section id="([^"]+)">', page) == ["summary", "cautions", "spectrum",
                                                            "heatmap"]
     doc = json.loads(_text(json_path))
+    assert doc["kernel_source"] is None and "Source: not recorded" in doc["summary"][0]
     np.testing.assert_allclose(doc["sections"]["spectrum"]["eigenvalues"],
                                np.linalg.eigvalsh(k)[::-1], rtol=1e-10, atol=1e-12)
     assert all(math.isfinite(v) for v in numbers_in(doc))
@@ -267,6 +327,14 @@ def test_kernel_store_gets_spectrum_and_heatmap(tmp_path):
     assert doc["sections"]["heatmap"]["class_counts"] == [6, 6]
     with pytest.raises(ValueError, match="`labels`"):
         write_report(store, out=tmp_path / "bad", labels=np.zeros(5, int))
+    # the source a store records (as `ntkcalc kernel` writes it) is shown on the page and kept
+    made = {"checkpoint": "/runs/a/ckpt", "step": 30, "item": None, "subtree": "params",
+            "model": "models:Mlp"}
+    record_source(str(store), made)
+    html_path, json_path = write_report(store, out=tmp_path / "sourced")
+    assert json.loads(_text(json_path))["kernel_source"] == made
+    assert ("Source: checkpoint /runs/a/ckpt step 30, subtree params, model models:Mlp."
+            in html.unescape(_text(html_path)))
 
 
 def _shown_numbers(text: str):

@@ -198,52 +198,53 @@ EXPECTED = {
     "convs": {
         "Conv_0.kernel": "conv", "Conv_0.bias": "bias", "depthwise.kernel": "conv",
         "depthwise.bias": "bias", "dilated.kernel": "conv", "dilated.bias": "bias",
-        "Dense_0.kernel": "dense", "Dense_0.bias": "bias",
+        "Dense_0.kernel": "dot", "Dense_0.bias": "bias",
     },
     "encoder": {
         "Embed_0.embedding": "embed",
         "LayerNorm_0.scale": "scale", "LayerNorm_0.bias": "bias",
         "LayerNorm_1.scale": "scale", "LayerNorm_1.bias": "bias",
-        **{f"attn.{n}.kernel": "dense" for n in ("query", "key", "value", "out")},
+        **{f"attn.{n}.kernel": "dot" for n in ("query", "key", "value", "out")},
         **{f"attn.{n}.bias": "bias" for n in ("query", "key", "value", "out")},
-        "Dense_0.kernel": "dense", "Dense_0.bias": "bias",
-        "Dense_1.kernel": "dense", "Dense_1.bias": "bias",
-        "Dense_2.kernel": "dense", "Dense_2.bias": "bias",
+        "Dense_0.kernel": "dot", "Dense_0.bias": "bias",
+        "Dense_1.kernel": "dot", "Dense_1.bias": "bias",
+        "Dense_2.kernel": "dot", "Dense_2.bias": "bias",
     },
     "transposed": {
-        "w_t": "dense", "gain": "scale", "log_scale": "fallback", "w_rec": "dense",
-        "v": "dense",
+        "w_t": "dot", "gain": "scale", "log_scale": "fallback", "w_rec": "dot",
+        "v": "dot",
     },
-    "linear-uses": {"w": "dense", "shift": "bias", "gate": "fallback", "cls": "concat",
-                    "wpe": "bias", "v": "dense"},
+    "linear-uses": {"w": "dot", "shift": "bias", "gate": "fallback", "cls": "concat",
+                    "wpe": "bias", "v": "dot"},
     "upsample": {
-        "CheckpointDense_0.kernel": "dense", "CheckpointDense_0.bias": "bias",
+        "CheckpointDense_0.kernel": "dot", "CheckpointDense_0.bias": "bias",
         "ConvTranspose_0.kernel": "conv", "ConvTranspose_0.bias": "bias",
-        "Dense_0.kernel": "dense", "Dense_0.bias": "bias",
+        "Dense_0.kernel": "dot", "Dense_0.bias": "bias",
     },
     "layer-scan": {
         **{f"ScanScanBlock_0.Dense_{i}.{n}": r for i in (0, 1)
-           for n, r in (("kernel", "dense"), ("bias", "bias"))},
+           for n, r in (("kernel", "dot"), ("bias", "bias"))},
         "ScanScanBlock_0.LayerNorm_0.scale": "scale",
         "ScanScanBlock_0.LayerNorm_0.bias": "bias",
-        "Dense_0.kernel": "dense", "Dense_0.bias": "bias",
+        "Dense_0.kernel": "dot", "Dense_0.bias": "bias",
     },
     "recurrent": {
-        **{f"LSTMCell_0.i{g}.kernel": "dense" for g in "ifgo"},
+        **{f"LSTMCell_0.i{g}.kernel": "dot" for g in "ifgo"},
         **{f"LSTMCell_0.h{g}.{n}": r for g in "ifgo"
-           for n, r in (("kernel", "dense"), ("bias", "bias"))},
+           for n, r in (("kernel", "dot"), ("bias", "bias"))},
         **{f"GRUCell_0.i{g}.{n}": r for g in "rzn"
-           for n, r in (("kernel", "dense"), ("bias", "bias"))},
-        **{f"GRUCell_0.h{g}.kernel": "dense" for g in "rzn"},
+           for n, r in (("kernel", "dot"), ("bias", "bias"))},
+        **{f"GRUCell_0.h{g}.kernel": "dot" for g in "rzn"},
         "GRUCell_0.hn.bias": "bias",
-        "Dense_0.kernel": "dense", "Dense_0.bias": "bias",
+        "Dense_0.kernel": "dot", "Dense_0.bias": "bias",
     },
     "equinox": {"emb.weight": "embed",
                 **{f"mlp.layers.{i}.{n}": r for i in range(3)
-                   for n, r in (("weight", "dense"), ("bias", "bias"))}},
-    # A table used by a lookup and a matmul has two uses: structured (dense from the consumers),
-    # not factored; the lookup inside tanh is still a rule (tanh consumes the gathered rows).
-    "lookup": {"table": "embed", "clipped": "embed", "tied": "dense+embed×2"},
+                   for n, r in (("weight", "dot"), ("bias", "bias"))}},
+    # A table used by a lookup and a matmul has two uses: structured (a dense derivative from
+    # the consumers), not factored; the lookup inside tanh is still a rule (tanh consumes the
+    # gathered rows).
+    "lookup": {"table": "embed", "clipped": "embed", "tied": "dot+embed×2"},
 }
 
 
@@ -266,12 +267,12 @@ def test_structured_matches_dense_reference(models, name, outputs):
 
 
 def test_zoo_rules():
-    # Shared and reused weights: a weight used twice is still structured (dense×2), an
+    # Shared and reused weights: a weight used twice is still structured (dot×2), an
     # embedding lookup (gather of rows) has its own rule; dense biases fold into their layer's
     # factors.
     expected = {
-        "shared-weight": {"w": "dense×2", "b": "bias", "v": "dense"},
-        "tokens": {"Embed_0.embedding": "embed", "Dense_0.kernel": "dense",
+        "shared-weight": {"w": "dot×2", "b": "bias", "v": "dot"},
+        "tokens": {"Embed_0.embedding": "embed", "Dense_0.kernel": "dot",
                    "Dense_0.bias": "bias"},
     }
     for case in ZOO:

@@ -44,3 +44,22 @@ def test_refuses_what_is_not_a_whole_store(tmp_path):
     victim.unlink()  # one tile's checksum lost: that tile can no longer be trusted
     with pytest.raises(ValueError, match="`path`=.*missing or fail their checksum"):
         ntkcalc.open_kernel(tmp_path / "k.zarr")
+
+
+def test_trace_store_records_the_number_of_outputs(tmp_path):
+    # A trace kernel's shape (N, N) does not show O: the store records it when written, so the
+    # reopened view knows it (O = the model's output width, from calling the net).
+    import zarr
+
+    net, x = mlp(9)
+    o = int(np.asarray(net(x[:1])).shape[-1])
+    view = ntkcalc.ntk(net, x, store=tmp_path / "k.zarr", progress=False)
+    again = ntkcalc.open_kernel(tmp_path / "k.zarr")
+    assert (again.kind, again.num_outputs) == ("trace", o) == (view.kind, view.num_outputs)
+    layers = ntkcalc.ntk_by_layer(net, x, store=tmp_path / "b.zarr", progress=False)
+    assert ntkcalc.open_kernel(tmp_path / "b.zarr", group=list(layers)[0]).num_outputs == o
+    # a store written before O was recorded: unknown for a trace kernel, not guessed
+    group = zarr.open_group(str(tmp_path / "k.zarr"), mode="r+")
+    group.attrs["ntkcalc"] = {k: v for k, v in group.attrs["ntkcalc"].items()
+                              if k != "num_outputs"}
+    assert ntkcalc.open_kernel(tmp_path / "k.zarr").num_outputs is None

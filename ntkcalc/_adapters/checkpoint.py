@@ -1,4 +1,8 @@
-"""Load saved parameters into a `Net`: orbax-checkpoint directories and flax msgpack files.
+"""Read saved parameters into a model's variables: orbax-checkpoint directories and flax msgpack.
+
+`restore` returns the variables (linen) or the model with its state replaced (nnx); `Net` wraps
+them (`Net.from_checkpoint`, `load_checkpoint` in ``net.py``), so this module never builds a Net
+and the flow stays one-way: ``net.py`` → ``checkpoint.py``.
 
 Formats, told apart by what is on disk:
 
@@ -32,8 +36,6 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 import numpy as np
-
-from .net import Net
 
 PICKLE_SUFFIXES = (".pkl", ".pickle", ".pck", ".pt", ".pth", ".joblib")
 
@@ -296,7 +298,7 @@ def _plain(tree: PyTree) -> dict:
     return tree
 
 
-def _linen(saved, where, module, example, variables, trainable, apply_kwargs) -> Net:
+def _linen(saved, where, module, example, variables, trainable, apply_kwargs) -> dict:
     saved = _plain(saved)
     if not isinstance(saved, dict):
         raise ValueError(
@@ -321,10 +323,10 @@ def _linen(saved, where, module, example, variables, trainable, apply_kwargs) ->
     else:
         restored = saved if trainable in saved else {trainable: saved}
         restored = jax.tree_util.tree_map(jnp.asarray, restored)
-    return Net.from_linen(module, restored, trainable=trainable, **apply_kwargs)
+    return restored
 
 
-def _nnx(saved, where, model) -> Net:
+def _nnx(saved, where, model):
     from flax import nnx
 
     graphdef, state = nnx.split(model)
@@ -335,50 +337,20 @@ def _nnx(saved, where, model) -> Net:
     filled = _fill(nnx.to_pure_dict(state), _plain(saved), where=where,
                    what=f"state of {type(model).__name__}", optional=optional)
     nnx.replace_by_pure_dict(state, filled)
-    return Net.from_nnx(nnx.merge(graphdef, state))
+    return nnx.merge(graphdef, state)
 
 
-def load_checkpoint(
-    path,
-    *,
-    module,
-    example=None,
-    variables: PyTree = None,
-    step: int | None = None,
-    item: str | None = None,
-    subtree: str | None = None,
-    trainable: str = "params",
-    **apply_kwargs,
-) -> Net:
-    """A `Net` with parameters read from an orbax checkpoint or flax msgpack bytes.
+def restore(path, *, module, example=None, variables: PyTree = None, step: int | None = None,
+            item: str | None = None, subtree: str | None = None, trainable: str = "params",
+            apply_kwargs: Mapping[str, Any] | None = None):
+    """The checkpoint at ``path`` matched to ``module``: see `load_checkpoint` for the arguments.
 
-    Args:
-        path: an orbax checkpoint directory, a ``CheckpointManager`` directory (or one of its step
-            directories), or a msgpack file; relative paths are taken from the working directory.
-            Pickle files are refused.
-        module: a flax linen module, or an nnx model (constructed, or abstract from
-            ``nnx.eval_shape``) whose state is replaced by the checkpoint's.
-        example: linen only: an example input batch; the variables' structure comes from
-            ``module.init`` on it (shapes only, nothing is computed).
-        variables: linen only: a variables template (arrays or ``jax.ShapeDtypeStruct``) instead
-            of ``example``.
-        step: the step to load from a ``CheckpointManager`` directory (default: the latest).
-        item: the item to load when a step holds several (e.g. ``"state"``).
-        subtree: a ``"/"``-separated key path to the part of the checkpoint that holds the
-            variables, e.g. ``"params"`` for a saved train state.
-        trainable: linen only: the collection to differentiate (as in `Net.from_linen`).
-        apply_kwargs: linen only: passed to ``module.apply`` (and ``module.init``).
-
-    A checkpoint of the ``trainable`` collection alone (``variables["params"]``) is accepted for
-    a module with no other collections; for nnx, a checkpoint without the rng state keeps the
-    template's rng state when the template is concrete.
-
-    Raises:
-        ValueError: for a pickle file, or a checkpoint that does not match the module; the message
-            lists the first differing paths.
+    Returns the variables dict for a linen module (the ``trainable`` collection among them), or
+    the nnx model with its state replaced by the checkpoint's.
     """
     from flax import nnx
 
+    apply_kwargs = dict(apply_kwargs or {})
     is_nnx = isinstance(module, nnx.Module)
     if is_nnx and (example is not None or variables is not None or apply_kwargs):
         raise ValueError(

@@ -81,12 +81,10 @@ def _check_call_arguments(model, stateful: bool, kwargs: dict) -> None:
         )
 
 
-def from_equinox(model, state=None, *, batched: bool = False, inference: bool = True,
-                 **call_kwargs):
-    """See `Net.from_equinox`."""
+def equinox_parts(model, state=None, *, batched: bool = False, inference: bool = True,
+                  **call_kwargs):
+    """``(call, params, state, name)`` of `Net.from_equinox` (which documents the arguments)."""
     import equinox as eqx
-
-    from .net import Net
 
     if not isinstance(model, eqx.Module) or not callable(model):
         raise TypeError(
@@ -113,4 +111,4 @@ def from_equinox(model, state=None, *, batched: bool = False, inference: bool = 
     frozen, static = eqx.partition(rest, eqx.is_array)
     call = functools.partial(_call_equinox, static, state is not None, bool(batched),
                              tuple(sorted(call_kwargs.items())))
-    return Net._make(call, params, (frozen, state), type(model).__name__)
+    return (call, params, (frozen, state), type(model).__name__)

@@ -44,11 +44,9 @@ def _key_data(rng):
     )
 
 
-def from_haiku(transformed, params, state=None, *, rng=None, **apply_kwargs):
-    """See `Net.from_haiku`."""
+def haiku_parts(transformed, params, state=None, *, rng=None, **apply_kwargs):
+    """``(call, params, state, name)`` of `Net.from_haiku` (which documents the arguments)."""
     import haiku as hk
-
-    from .net import Net
 
     if not isinstance(transformed, hk.Transformed | hk.TransformedWithState):
         raise TypeError(
@@ -86,4 +84,4 @@ def from_haiku(transformed, params, state=None, *, rng=None, **apply_kwargs):
     data, impl = _key_data(rng)
     call = functools.partial(_call_haiku, transformed.apply, with_state, takes_rng, impl,
                              tuple(sorted(apply_kwargs.items())))
-    return Net._make(call, dict(params), (state, data), "haiku")
+    return (call, dict(params), (state, data), "haiku")

@@ -26,7 +26,11 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .._words import counted
+from .checkpoint import restore
+from .equinox import equinox_parts
 from .errors import NetCallError, constructor_hint, model_kind
+from .haiku import haiku_parts
 from .outputs import Item, picking
 
 PyTree = Any
@@ -248,9 +252,8 @@ class Net:
         checkpoint of the same model reuses the compiled kernels through
         ``net.replace(params=eqx.filter(trained, eqx.is_inexact_array))``.
         """
-        from .equinox import from_equinox
-
-        return from_equinox(model, state, batched=batched, inference=inference, **call_kwargs)
+        return cls._make(*equinox_parts(model, state, batched=batched, inference=inference,
+                                        **call_kwargs))
 
     @classmethod
     def from_haiku(cls, transformed, params, state=None, *, rng=None, **apply_kwargs) -> Net:
@@ -262,9 +265,7 @@ class Net:
         (fixed, so the Net is one deterministic function). ``apply_kwargs`` (e.g.
         ``is_training=False``) are passed to ``apply`` on every call.
         """
-        from .haiku import from_haiku
-
-        return from_haiku(transformed, params, state, rng=rng, **apply_kwargs)
+        return cls._make(*haiku_parts(transformed, params, state, rng=rng, **apply_kwargs))
 
     @classmethod
     def from_checkpoint(cls, path, *, module, **options) -> Net:
@@ -274,8 +275,6 @@ class Net:
         the structure) or an nnx model (abstract or constructed); ``options`` are
         `load_checkpoint`'s (``step``, ``item``, ``subtree``, ``trainable``, apply keywords).
         """
-        from .checkpoint import load_checkpoint
-
         return load_checkpoint(path, module=module, **options)
 
     # -- use ---------------------------------------------------------------------------------
@@ -318,6 +317,53 @@ class Net:
         leaves = jax.tree_util.tree_leaves(self.params)
         dtypes = sorted({str(jnp.asarray(leaf).dtype) for leaf in leaves}) if leaves else []
         return (
-            f"Net({self.name}, {len(leaves)} parameter leaves, {self.num_params:,} parameters, "
+            f"Net({self.name}, {counted(len(leaves), 'parameter leaf', 'parameter leaves')}, "
+            f"{counted(self.num_params, 'parameter')}, "
             f"dtype {'/'.join(dtypes) or 'none'})"
         )
+
+
+def load_checkpoint(
+    path,
+    *,
+    module,
+    example=None,
+    variables: PyTree = None,
+    step: int | None = None,
+    item: str | None = None,
+    subtree: str | None = None,
+    trainable: str = "params",
+    **apply_kwargs,
+) -> Net:
+    """A `Net` with parameters read from an orbax checkpoint or flax msgpack bytes.
+
+    Args:
+        path: an orbax checkpoint directory, a ``CheckpointManager`` directory (or one of its step
+            directories), or a msgpack file; relative paths are taken from the working directory.
+            Pickle files are refused.
+        module: a flax linen module, or an nnx model (constructed, or abstract from
+            ``nnx.eval_shape``) whose state is replaced by the checkpoint's.
+        example: linen only: an example input batch; the variables' structure comes from
+            ``module.init`` on it (shapes only, nothing is computed).
+        variables: linen only: a variables template (arrays or ``jax.ShapeDtypeStruct``) instead
+            of ``example``.
+        step: the step to load from a ``CheckpointManager`` directory (default: the latest).
+        item: the item to load when a step holds several (e.g. ``"state"``).
+        subtree: a ``"/"``-separated key path to the part of the checkpoint that holds the
+            variables, e.g. ``"params"`` for a saved train state.
+        trainable: linen only: the collection to differentiate (as in `Net.from_linen`).
+        apply_kwargs: linen only: passed to ``module.apply`` (and ``module.init``).
+
+    A checkpoint of the ``trainable`` collection alone (``variables["params"]``) is accepted for
+    a module with no other collections; for nnx, a checkpoint without the rng state keeps the
+    template's rng state when the template is concrete.
+
+    Raises:
+        ValueError: for a pickle file, or a checkpoint that does not match the module; the message
+            lists the first differing paths.
+    """
+    restored = restore(path, module=module, example=example, variables=variables, step=step,
+                       item=item, subtree=subtree, trainable=trainable, apply_kwargs=apply_kwargs)
+    if model_kind(module) == "nnx":
+        return Net.from_nnx(restored)
+    return Net.from_linen(module, restored, trainable=trainable, **apply_kwargs)

@@ -11,6 +11,8 @@ from typing import Literal
 import numpy as np
 import scipy.sparse.linalg as spla
 
+from .._words import counted
+
 #: Relative asymmetry ``max|K - Kᵀ| / max|K|`` above which a kernel is rejected. Kernels computed
 #: in float32 are symmetric to about 1e-7 relative; anything larger is not a kernel matrix.
 SYMMETRY_RTOL = 1e-6
@@ -163,7 +165,7 @@ def one_hot(
         return np.zeros((0, num_classes or 0))
     c = int(arr.max()) + 1 if num_classes is None else num_classes
     if arr.min() < 0 or arr.max() >= c:
-        where = f"the model has {c} output(s)" if num_classes is not None else "classes"
+        where = f"the model has {counted(c, 'output')}" if num_classes is not None else "classes"
         raise ValueError(
             f"`{name}` holds integer labels in [{arr.min()}, {arr.max()}] but {where}: labels "
             f"must lie in [0, {c}). Integer arrays are read as class labels; pass one-hot "
@@ -310,8 +312,8 @@ def kernel_to_flat(name: str, k, *, num_outputs: int) -> tuple[np.ndarray, bool]
         )
     if o != num_outputs:
         raise ValueError(
-            f"`{name}` is {arr.shape}, a kernel over {o} outputs, but the outputs have "
-            f"{num_outputs} columns: they must agree."
+            f"`{name}` is {arr.shape}, a kernel over {counted(o, 'output')}, but the outputs "
+            f"have {counted(num_outputs, 'column')}: they must agree."
         )
     return square_kernel(name, arr.transpose(0, 2, 1, 3).reshape(n * o, n * o)), False
 

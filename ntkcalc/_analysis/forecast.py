@@ -23,14 +23,16 @@ from __future__ import annotations
 
 import dataclasses
 import warnings
-from typing import Literal
+from typing import Literal, get_args
 
 import numpy as np
 import scipy.integrate
 import scipy.special
 
+from .._engine.options import check_choice
 from .._kind import describe, kind_of
 from .._tiles.progress import bar
+from .._words import counted
 from . import _checks, rank
 from ._eig import eigh_descending
 from ._result import Result
@@ -295,7 +297,8 @@ def _per_output_or_full(name: str, k, *, num_outputs: int) -> str:
     ndim = _checks.ndim_of(k)
     if kind is not None and o is not None and o != num_outputs:
         raise ValueError(
-            f"`{name}` is {describe(kind, o)}, but the outputs have {num_outputs} column(s): "
+            f"`{name}` is {describe(kind, o)}, but the outputs have "
+            f"{counted(num_outputs, 'column')}: "
             "the kernel and the outputs must come from the same model."
         )
     if ndim == 4:
@@ -331,7 +334,8 @@ def _check_result_size(count: int, *, rows: int, n_out: int, cols: int) -> None:
     need = 8 * count * (2 * rows * n_out + 3 * cols)
     if need > MAX_RESULT_BYTES:
         raise ValueError(
-            f"`steps` asks for {count:,} snapshots of {rows:,} × {n_out} outputs, about "
+            f"`steps` asks for {counted(count, 'snapshot')} of {rows:,} × "
+            f"{counted(n_out, 'output')}, about "
             f"{need / 2**30:.1f} GiB. Only the requested steps are kept: pass the steps you "
             "want to see as a sorted array, e.g. np.unique(np.geomspace(1, S, 100).astype(int))."
         )
@@ -421,8 +425,7 @@ def forecast(
         cross-entropy the curvature of the loss in the outputs is at most ½ (Gershgorin bound on
         ``diag(p) − ppᵀ``), so the warning comes above ``2·max_stable_lr``.
     """
-    if loss not in ("mse", "cross-entropy"):
-        raise ValueError(f"`loss` must be 'mse' or 'cross-entropy', got {loss!r}.")
+    check_choice("loss", loss, get_args(Loss))
     lr = _checks.positive("lr", lr)
     f0 = _checks.finite_array("f0_train", f0_train, ndim=(1, 2))
     n = f0.shape[0]

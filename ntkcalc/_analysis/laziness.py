@@ -44,12 +44,17 @@ import dataclasses
 import itertools
 import warnings
 from collections.abc import Sequence
+from typing import get_args
 
 import numpy as np
 
+from .._engine.options import check_choice
+from .._kind import Kind
+from .._words import counted
 from . import _checks
 from ._result import Result
 from .alignment import kernel_distance
+from .rank import precision_of
 
 #: Threshold on the kernel's relative change and distance to the initial kernel (our choice).
 KERNEL_THRESHOLD = 0.05
@@ -138,6 +143,11 @@ class Laziness(Result):
             (None without a spread).
         within_spread: the kernel criteria whose change was above the threshold but within the
             init spread (left to the forecast gap to decide).
+        kind: the kind of the kernels compared (``"trace"``, ``"full"``, ... as `ntk`'s
+            ``outputs``), or None when not given or no kernel was compared.
+        precision: the dtype the kernels were computed in (``"float32"``, ``"float64"``), whose
+            rounding limits how small a change can be told from zero; None when not given or no
+            kernel was compared.
     """
 
     lazy: bool
@@ -152,6 +162,8 @@ class Laziness(Result):
     first_step: int | None
     beyond_spread: bool | None
     within_spread: tuple[str, ...] = ()
+    kind: str | None = None
+    precision: str | None = None
 
     def to_dict(self) -> dict:
         """Every number and the sentence as plain Python values (for JSON)."""
@@ -174,7 +186,8 @@ def _curve(name: str, values, steps):
         return arr, None if np.ndim(values) == 0 else np.arange(arr.size)
     at = np.asarray(steps)
     if at.shape != arr.shape:
-        raise ValueError(f"`{name}` has {arr.size} values but its steps have {at.size}.")
+        raise ValueError(f"`{name}` has {counted(arr.size, 'value')} but its steps have "
+                         f"{at.size}.")
     return arr, at
 
 
@@ -195,6 +208,8 @@ def laziness(
     spread: InitSpread | None = None,
     kernel_threshold: float = KERNEL_THRESHOLD,
     gap_threshold: float = GAP_THRESHOLD,
+    kind: Kind | None = None,
+    precision=None,
 ) -> Laziness:
     """The laziness verdict from whichever criteria were measured (see the module docstring).
 
@@ -208,11 +223,17 @@ def laziness(
         spread: the init-spread yardstick (`init_spread`), or None.
         kernel_threshold: threshold > 0 on relative change and distance.
         gap_threshold: threshold > 0 on the forecast gap.
+        kind: the kind of the kernels behind ``relative_change`` and ``distance`` (`KernelArray`'s
+            ``kind``), recorded in the result.
+        precision: the dtype those kernels were computed in (a dtype or its name), recorded.
 
     Returns:
         `Laziness`. At least one criterion must be given.
     """
     kt = _threshold("kernel_threshold", kernel_threshold)
+    if kind is not None:
+        check_choice("kind", kind, get_args(Kind))
+    precision = None if precision is None else precision_of(None, precision).name
     gt = _threshold("gap_threshold", gap_threshold)
     curves = {
         "relative_change": _curve("relative_change", relative_change, steps),
@@ -276,7 +297,7 @@ def laziness(
         lazy=lazy, sentence=sentence, relative_change=peak["relative_change"],
         distance=peak["distance"], forecast_gap=peak["forecast_gap"], spread=spread,
         kernel_threshold=kt, gap_threshold=gt, failed=tuple(failed), first_step=first,
-        beyond_spread=beyond, within_spread=tuple(within),
+        beyond_spread=beyond, within_spread=tuple(within), kind=kind, precision=precision,
     )
 
 

@@ -27,7 +27,7 @@ from .checks import (
     compute_dtype,
     output_size,
 )
-from .contract import STREAM_CHUNK_BYTES
+from .contract import STREAM_CHUNK_BYTES, stream_chunk
 from .options import METHODS, OUTPUTS, basis_size, check_choice, tile_shape
 from .program import Program
 from .select import ParamFilter, select
@@ -39,7 +39,7 @@ class LeafCost:
 
     name: str
     shape: tuple[int, ...]
-    rule: str  # dense, conv, scale, bias (×uses), fallback, unused
+    rule: str  # dot, conv, embed, scale, bias, concat (×uses, +), fallback, unused
     representation: str  # factored, dense (from the rule), jacobian (fallback), unused, jvp
     flops: float  # total over the whole kernel
     bytes_per_example: float  # factor bytes held per example
@@ -206,6 +206,9 @@ def _traced(req: Request, base: Program):
     return _TRACED[key]
 
 
+traced = _traced  # the package-internal name (`ntkcalc._sketch` uses it)
+
+
 def _blocks(n1: int, n2: int, peak, budget: int) -> int | None:
     """Largest tile side (examples) whose estimated peak fits ``budget``; padding kept small."""
     n = max(n1, n2)
@@ -298,6 +301,11 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
 
     backprop = fwd + 2.0 * a * fwd  # one forward, A backward passes
     transient = a * acts * isz  # VJP residuals and cotangents, per example
+    # A reverse pass of the whole network through a scan adds each loop-constant leaf's
+    # cotangent into an accumulator at every step: memory-bound, priced at its measured rate
+    # (in matmul-FLOP equivalents). Paid by the methods that run that pass (jacobian, jvp).
+    loops = a * sum(st.loop_accumulation(analysis.uses[k], p) for k, p in enumerate(sizes))
+    loop_flops = loops * rate / C.scan_accumulation_rate(req.dtype.name) if loops else 0.0
 
     # Jacobian contraction: every leaf dense from the network-wide VJP.
     if "jacobian" in costed:
@@ -307,7 +315,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
                                  pairs * C.dense_pair_flops(a, p, outputs), a * p * isz))
         prog = dataclasses.replace(base, kinds=tuple("dense" for _ in names))
         finish("jacobian", prog, rows, sum(C.dense_pair_flops(a, p, outputs) for p in sizes),
-               backprop, a * sum(sizes) * isz, transient, 0.0)
+               backprop + loop_flops, a * sum(sizes) * isz, transient, 0.0)
 
     # Structured derivatives: per leaf factored, dense or streamed from its consumer, else the
     # fallback Jacobian.
@@ -352,7 +360,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str) -> Plan:
                                    kinds=tuple("dense" for _ in names))
         groups = len(sel.group_names)
         jvp_pair = a * 3.0 * fwd * groups
-        finish("jvp", prog, rows, jvp_pair, a * 3.0 * fwd, x_bytes,
+        finish("jvp", prog, rows, jvp_pair, a * 3.0 * fwd + loop_flops, x_bytes,
                chunk * (p_total * isz * 3 + acts * isz * 2), 0.0)
 
     feasible = {m: v for m, v in candidates.items() if v[2] is not None}
@@ -464,22 +472,27 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
         choice, pf, eb = "dense", dense_pf, a * p * isz
         if st.factorable(uses):
             bsz, t, c, r = st.factored_sizes(uses[0])
+            rule = uses[0].rule
             extra = 1 if folds[k] is not None else 0  # a folded bias is one more input
-            embed = uses[0].rule == "embed"  # looked-up rows: the input Gram is a comparison
-            fpf = C.factored_pair_flops(a, bsz, t, 0 if embed else c + extra, r, outputs)
+            fpf = C.factored_pair_flops(a, bsz, t, rule.input_gram_width(c) + extra, r, outputs)
             # Against the dense form of the weight and, when folded, of its bias too.
             alone = dense_pf + (C.dense_pair_flops(a, sizes[folds[k]], outputs) if extra else 0)
             # One example's dense derivative from its factors, at the speed of a GEMM whose inner
             # dimension is the number of positions t (slow for small t), in matmul FLOPs.
-            form = (2.0 * a * bsz * t * (c + extra) * r * pricing.rate
+            form = (C.formation_flops(a, bsz, t, c + extra, r) * pricing.rate
                     / C.formation_rate(t, pricing.dtype_name))
             dense_bytes = a * (p + (sizes[folds[k]] if extra else 0)) * isz
             fpb, side, per_pair = pricing.flops_per_byte, pricing.side, pricing.examples_per_pair
             traffic = 2 * C.factored_pair_elements(a, bsz, t, outputs) * isz * fpb
+            # Streamed chunks are whole multiples of `stream_chunk` features, the last one
+            # zero-padded: the padding is formed too (65 features in chunks of 64 cost 128).
+            width = c + extra
+            cc = stream_chunk(side, a, bsz, r, width, isz)
+            padded = -(-width // cc) * cc / width
             costs = {
                 "dense": alone + form * per_pair + dense_bytes * (2.0 / side + per_pair) * fpb,
                 "factored": fpf + traffic,
-                "streamed": alone + form * 2.0 / side,
+                "streamed": alone + form * padded * 2.0 / side,
             }
             # Streaming is the dense contraction without storing the derivative: it competes
             # with the dense form only, never with a cheaper factored contraction (its
@@ -489,7 +502,7 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
                 choice = "streamed"
             if choice != "dense":
                 pf = fpf if choice == "factored" else costs["streamed"]
-                eb = (bsz * t * (1 if embed else c + extra) + a * bsz * t * r) * isz
+                eb = (bsz * t * (rule.stored_inputs(c) + extra) + a * bsz * t * r) * isz
         if choice == "dense":
             folds[k] = None
         kinds[k] = choice
@@ -505,14 +518,5 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
 
 def _use_local_flops(u: st.Use) -> float:
     """FLOPs of one consumer's VJP with respect to its parameter operand (per direction), over
-    every step of its enclosing scans."""
-    out = math.prod(u.out_aval.shape) * u.repeats
-    if u.rule == "dense":
-        (lc, rc), _ = u.params["dimension_numbers"]
-        shape = u.in_avals[u.operand].shape
-        return 2.0 * out * math.prod(shape[d] for d in (rc if u.operand == 1 else lc))
-    if u.rule == "conv":
-        rhs = u.in_avals[1].shape
-        dn = u.params["dimension_numbers"]
-        return 2.0 * out * math.prod(rhs) / rhs[dn.rhs_spec[0]]
-    return float(out)
+    every step of its enclosing scans: its rule's `local_flops`."""
+    return u.rule.local_flops(u)

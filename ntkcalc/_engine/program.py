@@ -25,6 +25,7 @@ from . import products
 from . import structured as st
 from .contract import contract, dense_from_factored
 from .options import basis_size, tile_shape
+from .rules.bias import with_unit_input
 from .select import Selection
 
 
@@ -116,15 +117,13 @@ class Program:
                 (u,) = an.uses[k]
                 h, g = st.factors_of(u, caps[u.path], cots[u.path])
                 if self.folds and self.folds[k] is not None:
-                    h = jnp.concatenate([h, jnp.ones(h.shape[:-1] + (1,), h.dtype)], axis=-1)
+                    h = with_unit_input(h)
                 if kind in ("factored", "streamed"):
                     reps.append((h, g))
                     continue
-                if u.rule == "embed":  # looked-up rows as one-hot inputs (-1: a zero row)
-                    h = jax.nn.one_hot(h, u.in_avals[0].shape[0], dtype=g.dtype)
                 # Dense from the factors is one batched matmul (for a conv, over image patches),
                 # and its entries are a permutation of the leaf's: the kernel is unchanged.
-                reps.append(dense_from_factored(h, g))
+                reps.append(dense_from_factored(u.rule.dense_inputs(h, u, g.dtype), g))
             else:
                 reps.append(
                     st.local_vjp(an.uses[k], diff[k], [caps[u.path] for u in an.uses[k]],

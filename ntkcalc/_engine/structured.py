@@ -7,20 +7,20 @@ primitive(s) that consume it, looking through structure-preserving ops applied t
 on the output y of each consuming primitive, and the primitive's other operands h are captured on
 the forward pass. One VJP per output direction then gives the cotangents g = ∂f_a/∂y of every probe
 at once, and the leaf's derivative follows from the consumer alone: a VJP of
-``w ↦ primitive(h, chain(w))`` at g (rule outputs are exact for any consumer linear in w). For
-``dot_general`` and ``conv_general_dilated`` the derivative can also stay factored as (h, g), whose
-kernel contribution costs activations² rather than parameters (see `contract`).
+``w ↦ primitive(h, chain(w))`` at g (rule outputs are exact for any consumer linear in w). For a
+factorable rule (dot_general, conv_general_dilated, a row gather) the derivative can also stay
+factored as (h, g), whose kernel contribution costs activations² rather than parameters (see
+`contract`).
 
-Rules, per leaf: ``"dense"`` (dot_general), ``"conv"`` (conv_general_dilated, any strides, padding,
-dilation, feature groups), ``"embed"`` (a gather of whole rows, y[t] = E[idx_t]: the lookup is
-one_hot(idx) @ E, so it factors like a dense layer whose input Gram is [idx_t = idx'_s]),
-``"scale"`` (elementwise mul), ``"bias"`` (add, or sub on either side), ``"concat"`` (a leaf
-concatenated with activations, e.g. a class token), and ``"fallback"`` (anything else: other
-gathers, nonlinear use, a leaf used as both operands, a scan carry, a leaf passed into a
-custom_jvp/custom_vjp function, whose custom rule need not be its body's derivative): the
-Jacobian contraction for that leaf only, from the same VJP. A leaf with several uses is
-structured when every use has a rule; its derivative is the sum over uses. The walk enters
-jit/pjit and rematerialization (jax.checkpoint, nn.remat) bodies, and the pass-throughs
+Rules live in `rules`, one file each, registered by primitive: ``"dot"`` (dot_general),
+``"conv"`` (conv_general_dilated, any strides, padding, dilation, feature groups), ``"embed"``
+(a gather of whole rows), ``"scale"`` (elementwise mul), ``"bias"`` (add, or sub on either
+side), ``"concat"`` (a leaf concatenated with activations, e.g. a class token); a leaf with none
+is ``"fallback"`` (other gathers, nonlinear use, a leaf used as both operands, a scan carry, a
+leaf passed into a custom_jvp/custom_vjp function, whose custom rule need not be its body's
+derivative): the Jacobian contraction for that leaf only, from the same VJP. A leaf with several
+uses is structured when every use has a rule; its derivative is the sum over uses. The walk
+enters jit/pjit and rematerialization (jax.checkpoint, nn.remat) bodies, and the pass-throughs
 include rev (a flipped kernel), neg and static slices (``wpe[:T]``).
 
 Scans: a leaf closed over by a scan body (an RNN cell's weights) is applied at every step, and
@@ -43,7 +43,9 @@ import jax.numpy as jnp
 from jax import lax
 from jax.extend import core as jcore
 
-from .contract import HIGHEST
+from . import rules
+from .rules import factorable as factorable
+from .rules.bias import fold_biases
 
 PASS_THROUGH = frozenset(
     {"reshape", "transpose", "convert_element_type", "squeeze", "expand_dims",
@@ -51,9 +53,6 @@ PASS_THROUGH = frozenset(
 )
 # Pass-throughs that permute, relabel or negate entries: inner products survive them.
 PERMUTING = PASS_THROUGH - {"broadcast_in_dim", "slice"}
-RULES = {"dot_general": "dense", "conv_general_dilated": "conv", "mul": "scale", "add": "bias",
-         "sub": "bias", "gather": "embed", "concatenate": "concat"}
-FACTORABLE = frozenset({"dense", "conv", "embed"})
 # Calls whose body is evaluated as written: jit, and rematerialization (jax.checkpoint,
 # nn.remat, nnx.remat), which only changes what is stored for the backward pass.
 CALLS = frozenset({"jit", "pjit", "closed_call", "remat2", "checkpoint"})
@@ -70,7 +69,7 @@ class Use:
     path: tuple[int, ...]  # equation indices through nested calls
     operand: int  # which operand of the primitive is the (transformed) leaf
     chain: tuple  # ((primitive, params), ...) applied to the leaf before use
-    rule: str
+    rule: rules.Rule
     primitive: object
     params: dict
     in_avals: tuple  # abstract values of the primitive's operands (per example)
@@ -112,39 +111,9 @@ class Analysis:
             return "unused"
         if self.fallback[leaf] is not None:
             return "fallback"
-        rules = sorted({u.rule for u in self.uses[leaf]})
+        names = sorted({u.rule.name for u in self.uses[leaf]})
         n = len(self.uses[leaf])
-        return "+".join(rules) + (f"×{n}" if n > 1 else "")
-
-
-def _has_rule(eqn, operand: int) -> bool:
-    name = eqn.primitive.name
-    if name == "conv_general_dilated":
-        return operand == 1 and eqn.params["batch_group_count"] == 1
-    if name == "gather":
-        return operand == 0 and _row_gather(eqn.params, eqn.invars[0].aval, eqn.invars[1].aval)
-    return name in RULES
-
-
-def _row_gather(params, operand, indices) -> bool:
-    """Whether a gather picks whole rows ``operand[idx]`` (an embedding lookup, ``jnp.take``).
-
-    Also the form ``operand[idx, 0:D]`` (equinox's ``Embedding`` under vmap): a start index on a
-    dimension sliced whole is clipped to 0, so only the row index matters.
-    """
-    dn = params["dimension_numbers"]
-    rest = tuple(operand.shape[1:])
-    dims = tuple(dn.start_index_map)
-    collapsed = tuple(dn.collapsed_slice_dims)
-    out_nd = indices.ndim - 1 + operand.ndim - len(collapsed)
-    return (
-        indices.ndim >= 1 and 0 in dims and indices.shape[-1] == len(dims)
-        and (len(dims) == 1 or params["mode"] == lax.GatherScatterMode.CLIP)
-        and collapsed in ((0,), ())
-        and tuple(dn.operand_batching_dims) == () and tuple(dn.start_indices_batching_dims) == ()
-        and tuple(params["slice_sizes"]) == (1, *rest)
-        and tuple(dn.offset_dims) == tuple(range(indices.ndim - 1, out_nd))
-    )
+        return "+".join(names) + (f"×{n}" if n > 1 else "")
 
 
 def _scan_operand(params, pos: int) -> str | None:
@@ -192,11 +161,12 @@ def analyze(closed, num_diff: int) -> Analysis:
                 derived[eqn.outvars[0]] = (
                     leaf, chain + ((eqn.primitive, dict(eqn.params)),), scans)
                 continue
-            if len(hits) == 1 and _has_rule(eqn, hits[0][0]):
+            rule = rules.rule_for(eqn, hits[0][0]) if len(hits) == 1 else None
+            if rule is not None:
                 k, (leaf, chain, scans) = hits[0]
                 touched[leaf] = True
                 uses[leaf].append(
-                    Use(leaf, prefix + (i,), k, chain, RULES[name], eqn.primitive,
+                    Use(leaf, prefix + (i,), k, chain, rule, eqn.primitive,
                         dict(eqn.params), tuple(v.aval for v in eqn.invars), eqn.outvars[0].aval,
                         tuple(eqn.invars), eqn.outvars[0], scans)
                 )
@@ -224,7 +194,7 @@ def analyze(closed, num_diff: int) -> Analysis:
                         fail(inner[v_out][0], f"parameter returned from `{name}`")
                 continue
             for leaf in leaves:
-                if len(hits) > 1 and name in RULES:
+                if len(hits) > 1 and name in rules.RULES:
                     fail(leaf, f"`{name}` with the parameter in more than one operand")
                 elif name in CUSTOM:
                     fail(leaf, f"passed into `{name}`, whose custom derivative rule need not "
@@ -240,42 +210,7 @@ def analyze(closed, num_diff: int) -> Analysis:
     final_uses = tuple(tuple(u) if fallback[k] is None else () for k, u in enumerate(uses))
     unused = tuple(not touched[k] for k in range(num_diff))
     return Analysis(closed, num_diff, final_uses, tuple(fallback), unused,
-                    _fold_biases(final_uses))
-
-
-def _fold_biases(uses: tuple[tuple[Use, ...], ...]) -> tuple[int | None, ...]:
-    """For y = h·W (+ b): the bias leaf b whose derivative is the W factor's extra input 1.
-
-    With h' = [h, 1] the factored pair (h', g) is the derivative of [W; b] (the same cotangent g
-    reaches both, as y and y + b differ by a constant), so the bias costs no contraction of its
-    own. Applies when b is added right after a factorable dot_general, broadcast over its
-    positions only (B = 1), and maps one-to-one onto the output features.
-    """
-    by_out = {}
-    for k, us in enumerate(uses):
-        if factorable(us) and us[0].rule == "dense" and us[0].operand == 1:
-            by_out[(us[0].path[:-1], us[0].out_var)] = k
-    bias_of: list[int | None] = [None] * len(uses)
-    for k, us in enumerate(uses):
-        if (len(us) != 1 or us[0].primitive.name != "add" or not us[0].permuting):
-            continue
-        u = us[0]
-        other = u.in_vars[1 - u.operand]
-        w = by_out.get((u.path[:-1], other))
-        if w is None or bias_of[w] is not None:
-            continue
-        wu = uses[w][0]
-        if wu.scans != u.scans:
-            continue
-        b, t, _, r = _step_sizes(wu)
-        y = wu.out_aval.shape
-        bias_shape = u.in_avals[u.operand].shape
-        (lc, _), _ = wu.params["dimension_numbers"]
-        lead = wu.in_avals[0].ndim - len(lc)  # batch + lhs-free dims come before R
-        expected = (1,) * lead + tuple(y[lead:])
-        if b == 1 and tuple(u.out_aval.shape) == tuple(y) and tuple(bias_shape) == expected:
-            bias_of[w] = k
-    return tuple(bias_of)
+                    fold_biases(final_uses))
 
 
 # -- evaluation with probes --------------------------------------------------------------------
@@ -399,89 +334,8 @@ def local_vjp(uses: tuple[Use, ...], leaf_value, operands: list, cotangents: lis
     return jax.vmap(lambda *g: vjp(list(g))[0])(*cotangents)
 
 
-def _move(x, src: list[int], dst_first: bool = True):
-    rest = [d for d in range(x.ndim) if d not in src]
-    return jnp.transpose(x, src + rest) if dst_first else jnp.transpose(x, rest + src)
-
-
-def dot_factors(use: Use, operands, cot):
-    """(h (B, T, C), g (A, B, T, R)) of a dot_general consumer. cot: (A, *y.shape)."""
-    (lc, rc), (lb, rb) = use.params["dimension_numbers"]
-    lhs, rhs = operands
-    p_is_rhs = use.operand == 1
-    h = lhs if p_is_rhs else rhs
-    hc, hb = (lc, lb) if p_is_rhs else (rc, rb)
-    pc = rc if p_is_rhs else lc
-    p_nd = use.in_avals[use.operand].ndim
-    hf = [d for d in range(h.ndim) if d not in hc and d not in hb]
-    nb, nhf = len(hb), len(hf)
-    n_pf = p_nd - len(pc) - nb
-    bsize = math.prod(h.shape[d] for d in hb)
-    tsize = math.prod(h.shape[d] for d in hf)
-    csize = math.prod(h.shape[d] for d in hc)
-    h_m = jnp.transpose(h, list(hb) + hf + list(hc)).reshape(bsize, tsize, csize)
-    # Output dims: batch, lhs-free, rhs-free.
-    a = cot.shape[0]
-    ob = list(range(1, 1 + nb))
-    if p_is_rhs:
-        ot = list(range(1 + nb, 1 + nb + nhf))
-        op = list(range(1 + nb + nhf, 1 + nb + nhf + n_pf))
-    else:
-        op = list(range(1 + nb, 1 + nb + n_pf))
-        ot = list(range(1 + nb + n_pf, 1 + nb + n_pf + nhf))
-    rsize = math.prod(cot.shape[d] for d in op)
-    g_m = jnp.transpose(cot, [0] + ob + ot + op).reshape(a, bsize, tsize, rsize)
-    return h_m, g_m
-
-
-def conv_factors(use: Use, operands, cot):
-    """(h (G, T, C), g (A, G, T, R)) of a conv consumer with the kernel as its rhs, from patches.
-
-    ``y[n, s, (grp, o)] = Σ_{c,k} P[n, s, (grp, c), k] W[(c, k), (grp, o)]``, so positions
-    T = (n, s), feature groups are the batch dims B, C = (in-channels per group) × window.
-    """
-    p = use.params
-    lhs, _ = operands
-    dn = p["dimension_numbers"]
-    rhs_shape = use.in_avals[1].shape
-    window = tuple(rhs_shape[d] for d in dn.rhs_spec[2:])
-    patches = lax.conv_general_dilated_patches(
-        lhs, window, p["window_strides"], p["padding"], lhs_dilation=p["lhs_dilation"],
-        rhs_dilation=p["rhs_dilation"], dimension_numbers=dn, precision=HIGHEST,
-    )
-    groups = p["feature_group_count"]
-    out_spec = dn.out_spec
-    # patches follow the output layout; features are (in-channel, window) flattened.
-    pm = _move(patches, [out_spec[1]], dst_first=False)  # (..., F)
-    pm = pm.reshape(-1, groups, pm.shape[-1] // groups)  # (T, G, C)
-    h_m = jnp.transpose(pm, (1, 0, 2))
-    a = cot.shape[0]
-    gm = jnp.moveaxis(cot, 1 + out_spec[1], -1)  # (A, ..., Cout)
-    gm = gm.reshape(a, -1, groups, gm.shape[-1] // groups)  # (A, T, G, R)
-    g_m = jnp.transpose(gm, (0, 2, 1, 3))
-    return h_m, g_m
-
-
-def embed_factors(use: Use, operands, cot):
-    """(idx (1, T) int32, g (A, 1, T, R)) of a row gather: T looked-up positions, R = row size.
-
-    ``idx`` is the row each position reads, after the gather's own index handling (clipped, or
-    -1 for an out-of-range index under fill mode, whose output does not depend on the rows).
-    """
-    _, indices = operands
-    v = use.in_avals[0].shape[0]
-    row = tuple(use.params["dimension_numbers"].start_index_map).index(0)
-    idx = indices[..., row].reshape(1, -1).astype(jnp.int32)
-    if use.params["mode"] == lax.GatherScatterMode.FILL_OR_DROP:
-        idx = jnp.where((idx >= 0) & (idx < v), idx, -1)
-    else:
-        idx = jnp.clip(idx, 0, v - 1)
-    a = cot.shape[0]
-    return idx, cot.reshape(a, 1, idx.shape[1], -1)
-
-
 def factors_of(use: Use, operands, cot):
-    """(h, g) of a factorable use: `dot_factors`, `conv_factors` or `embed_factors`.
+    """(h, g) of a factorable use: its rule's `factors`, (h (B, T, C), g (A, B, T, R)).
 
     Inside a scan (operands (S, ...), cot (A, S, ...)) a loop-constant weight is applied at every
     step, so its derivative is a sum over steps like the positions of a convolution: the steps
@@ -489,8 +343,7 @@ def factors_of(use: Use, operands, cot):
     join the batch dims B, whose weights are separate (``J[(S, B, C, R)]``, block by block).
     """
     if not use.scans:
-        return {"dense": dot_factors, "conv": conv_factors, "embed": embed_factors}[use.rule](
-            use, operands, cot)
+        return use.rule.factors(use, operands, cot)
     inner = dataclasses.replace(use, scans=use.scans[1:])
     h, g = jax.vmap(lambda ops, c: factors_of(inner, ops, c), in_axes=(0, 1))(operands, cot)
     s, b = h.shape[0], h.shape[1]  # h (S, B, T[, C]); g (S, A, B, T, R)
@@ -505,40 +358,24 @@ def factors_of(use: Use, operands, cot):
 def factored_sizes(use: Use) -> tuple[int, int, int, int]:
     """(B, T, C, R) of a factorable use, from the abstract shapes alone (an embedding: C = rows);
     the steps of an enclosing scan multiply T (a loop-constant weight) or B (a sliced one)."""
-    b, t, c, r = _step_sizes(use)
+    b, t, c, r = use.rule.step_sizes(use)
     for n, mode in use.scans:
         b, t = (b * n, t) if mode == "slice" else (b, t * n)
     return b, t, c, r
 
 
-def _step_sizes(use: Use) -> tuple[int, int, int, int]:
-    """(B, T, C, R) of one evaluation of a factorable consumer."""
-    if use.rule == "embed":
-        table, indices = use.in_avals
-        return 1, math.prod(indices.shape[:-1]), table.shape[0], math.prod(table.shape[1:])
-    if use.rule == "dense":
-        (lc, rc), (lb, rb) = use.params["dimension_numbers"]
-        p_is_rhs = use.operand == 1
-        h_aval = use.in_avals[1 - use.operand]
-        hc, hb = (lc, lb) if p_is_rhs else (rc, rb)
-        shape = h_aval.shape
-        b = math.prod(shape[d] for d in hb)
-        c = math.prod(shape[d] for d in hc)
-        t = math.prod(shape) // (b * c)
-        r = math.prod(use.out_aval.shape) // (b * t)
-        return b, t, c, r
-    dn = use.params["dimension_numbers"]
-    g = use.params["feature_group_count"]
-    rhs = use.in_avals[1].shape
-    out = use.out_aval.shape
-    cout = out[dn.out_spec[1]]
-    t = math.prod(out) // cout
-    c = math.prod(rhs) // cout
-    return g, t, c, cout // g
-
-
-def factorable(uses: tuple[Use, ...]) -> bool:
-    return len(uses) == 1 and uses[0].rule in FACTORABLE and uses[0].permuting
+def loop_accumulation(uses: tuple[Use, ...], size: int) -> int:
+    """Entries of a leaf's cotangent accumulated by one reverse pass through the whole network
+    (per example and output direction): a leaf closed over by a scan is a loop constant, and
+    the transposed scan adds its cotangent into an accumulator at every step, S·P entries
+    (a stacked leaf sliced by a scan writes each step's slice once; a leaf outside any scan is
+    written once). 0 when no use is inside a scan that sums over steps."""
+    total = 0
+    for u in uses:
+        summed = math.prod(n for n, mode in u.scans if mode == "sum")
+        if summed > 1:
+            total += size // math.prod(n for n, mode in u.scans if mode == "slice") * summed
+    return total
 
 
 def trace_example(fn, args_spec):

@@ -3,7 +3,7 @@
 Run by ``python -m ntkcalc.bench --sketch``; each measurement in a fresh subprocess
 (``python -m ntkcalc._sketch.bench_sketch <json>``), float32 with matmul precision "highest".
 
-Model: the dataset-scale MLP 784-512-512-512-10 (tanh) of `ntkcalc._tiles.bench_scale`, Gaussian
+Model: the dataset-scale MLP 784-512-512-512-10 (tanh) of `ntkcalc._bench.scale`, Gaussian
 inputs. Task (regenerable): labels are the argmax of a seeded teacher network of the same
 architecture (seed 7) on the same inputs; targets are their one-hot rows.
 
@@ -32,7 +32,7 @@ TOP = 10
 def _task(n: int):
     import numpy as np
 
-    from .._tiles import bench_scale as bs
+    from .._bench import scale as bs
 
     net = bs._net(0)
     x = bs._inputs(n, seed=1)
@@ -41,34 +41,77 @@ def _task(n: int):
     return net, x, np.eye(10)[labels]
 
 
-def _accuracy(spec: dict) -> list[dict]:
+def _exact_summary(k, y, n: int, ridges) -> dict:
+    """Top eigenvalues, kernel-ridge test MSE per ridge and centered alignment of the exact kernel
+    (N, N) on the 3/4 train, 1/4 test split."""
     import numpy as np
     import scipy.linalg
+    import scipy.sparse.linalg
+
+    import ntkcalc
+
+    tr, te = slice(0, 3 * n // 4), slice(3 * n // 4, n)
+    if n <= 4000:
+        eig = scipy.linalg.eigh(np.asarray(k, np.float64), eigvals_only=True,
+                                subset_by_index=(n - TOP, n - 1))[::-1]
+    else:  # Lanczos on the dense kernel (scipy ARPACK): O(N²) per product, not O(N³)
+        eig = np.sort(scipy.sparse.linalg.eigsh(k, k=TOP, which="LA", tol=1e-8,
+                                                return_eigenvectors=False))[::-1]
+    ktr = np.asarray(k[tr, tr], np.float64)
+    test_mse = []
+    for r in ridges:
+        fit = ntkcalc.ridge_fit(ktr, y[tr], ridge=r, k_test_train=np.asarray(k[te, tr],
+                                                                           np.float64))
+        test_mse.append(float(np.mean((fit.test_predictions - y[te]) ** 2)))
+    # Centered alignment (Cortes, Mohri & Rostamizadeh, JMLR 13, 2012), centering in place:
+    # at N = 20,000 the definition's N × N copies of YYᵀ would not fit beside the kernel.
+    rows = ktr.mean(0)
+    ktr -= rows[:, None]
+    ktr -= rows[None, :]
+    ktr += rows.mean()
+    yc = y[tr] - y[tr].mean(0)
+    align = float(np.sum((yc.T @ ktr) * yc.T) / (np.linalg.norm(ktr)
+                                                 * np.linalg.norm(yc.T @ yc)))
+    return {"eig": eig, "test_mse": test_mse, "alignment": align,
+            "trace_over_top": float(np.trace(k) / eig[0]),
+            "mean_diag_train": float(np.mean(np.diag(k)[tr]))}
+
+
+def _accuracy(spec: dict) -> list[dict]:
+    """Rows of features against the exact kernel. ``spec["dir"]`` (optional) keeps the exact
+    kernel's store and each k's features there, so a rerun reuses them."""
+    import numpy as np
 
     import ntkcalc
 
     n = spec["n"]
+    scales = list(spec.get("ridge_scales", (1e-2, 1e-1, 1.0)))
     net, x, y = _task(n)
+    keep = spec.get("dir")
     tr, te = slice(0, 3 * n // 4), slice(3 * n // 4, n)
     t0 = time.perf_counter()
-    k = np.asarray(ntkcalc.ntk(net, x, outputs="trace", progress=False), np.float64)
+    store = None if keep is None else os.path.join(keep, f"exact-{n}.zarr")
+    k = ntkcalc.ntk(net, x, outputs="trace", progress=False, memory=spec.get("memory", "3GB"),
+                    store=store)
+    k = np.asarray(k, np.float32 if n > 4000 else np.float64)
     exact_s = time.perf_counter() - t0
-    ktr = k[tr, tr]
-    m = ktr.shape[0]
-    eig = scipy.linalg.eigh(k, eigvals_only=True, subset_by_index=(n - TOP, n - 1))[::-1]
-    scale = float(np.trace(ktr)) / m
-    ridges = [c * scale for c in spec.get("ridge_scales", (1e-2, 1e-1, 1.0))]
-    test_mse = []
-    for r in ridges:
-        fit = ntkcalc.ridge_fit(ktr, y[tr], ridge=r, k_test_train=k[te, tr])
-        test_mse.append(float(np.mean((fit.test_predictions - y[te]) ** 2)))
-    align = ntkcalc.alignment(ktr, y[tr])
+    mean_diag = float(np.mean(np.diag(k)[tr]))
+    ridges = [c * mean_diag for c in scales]
+    exact = _exact_summary(k, y, n, ridges)
+    del k
+    eig = exact["eig"]
     rows = []
     for kk in spec["ks"]:
         t0 = time.perf_counter()
-        f = ntkcalc.ntk_features(net, x, k=kk, seed=0, progress=False, memory="6GB")
+        path = None if keep is None else os.path.join(keep, f"features-{n}-{kk}.npy")
+        if path is not None and os.path.exists(path):
+            phi = np.load(path)
+        else:
+            f = ntkcalc.ntk_features(net, x, k=kk, seed=0, progress=False, memory="6GB")
+            phi = np.asarray(f.features)
+            if path is not None:
+                np.save(path, phi)
         feat_s = time.perf_counter() - t0
-        phi = np.asarray(f.features)
         t0 = time.perf_counter()
         spec_f, _ = ntkcalc.features_spectrum(phi, top=TOP)
         fits = [ntkcalc.features_ridge(phi[tr], y[tr], ridge=r, test_features=phi[te],
@@ -79,19 +122,23 @@ def _accuracy(spec: dict) -> list[dict]:
         rel_c = np.abs(spec_f.corrected - eig) / eig
         rows.append({
             "kind": "accuracy", "N": n, "k": kk, "exact_s": exact_s, "features_s": feat_s,
-            "analysis_s": analysis_s, "trace_over_top": float(np.trace(k) / eig[0]),
+            "analysis_s": analysis_s, "trace_over_top": exact["trace_over_top"],
+            "eig_exact": eig.tolist(), "eig_corrected": np.asarray(spec_f.corrected).tolist(),
             "eig_rel_err_max": float(rel.max()), "eig_rel_err_top1": float(rel[0]),
             "eig_corrected_rel_err_max": float(rel_c.max()),
             "eig_rel_err_bar_max": float(np.max(spec_f.error / eig)),
-            "ridge_over_mean_diag": list(spec.get("ridge_scales", (1e-2, 1e-1, 1.0))),
-            "test_mse_exact": test_mse,
+            "eig_corrected_z_max": float(np.max(np.abs(spec_f.corrected - eig) / spec_f.error)),
+            "ridge_over_mean_diag": scales,
+            "test_mse_exact": exact["test_mse"],
             "test_mse_features": [ft.test_mse.value for ft in fits],
             "test_mse_features_corrected": [ft.test_mse.corrected for ft in fits],
             "test_mse_error_bar": [ft.test_mse.error for ft in fits],
-            "alignment_exact": align, "alignment_features": af.value,
+            "alignment_exact": exact["alignment"], "alignment_features": af.value,
             "alignment_error_bar": af.error,
-            "alignment_z": abs(af.value - align) / af.error,
+            "alignment_z": abs(af.value - exact["alignment"]) / af.error,
+            "load_avg": os.getloadavg()[0],
         })
+        print(json.dumps(rows[-1]), file=sys.stderr, flush=True)
     return rows
 
 
@@ -102,7 +149,7 @@ def _scale(spec: dict) -> list[dict]:
 
     import ntkcalc
 
-    from .._tiles import bench_scale as bs
+    from .._bench import scale as bs
 
     n, k = spec["n"], spec["k"]
     net = bs._net(0)

@@ -32,7 +32,7 @@ from .._analysis._result import Result
 from .._engine import cost as C
 from .._engine import structured as st
 from .._engine.options import check_choice
-from .._engine.planner import _traced, prepare
+from .._engine.planner import prepare, traced
 from .._engine.program import Program
 from .._engine.select import ParamFilter
 from .._tiles.blocking import block_bounds, padded
@@ -133,7 +133,7 @@ def _sketch(req, *, k: int, outputs: str, method: str) -> tuple[Sketch, float]:
     prog_outputs = "logit-sum" if outputs == "logit-sum" else "full"
     base = Program(req.net.call, jax.tree_util.tree_structure(req.params), sel, prog_outputs,
                    req.num_outputs, "jacobian", ("dense",) * len(req.diff))
-    _, acts, an = _traced(req, base)
+    _, acts, an = traced(req, base)
     kinds = []
     folds: list[int | None] = [None] * len(req.diff)
     for leaf in range(len(req.diff)):

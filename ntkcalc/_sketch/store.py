@@ -24,8 +24,7 @@ import numpy as np
 import zarr
 
 from .._tiles.fingerprint import array_hash
-from .._tiles.messages import NOT_A_STORE
-from .._tiles.store import ATTR, LAYOUT, _checksum, describe
+from .._tiles.store import ATTR, checksum, create_arrays, describe, open_arrays
 
 #: Rows of the inputs hashed into the fingerprint (evenly spaced, plus the last one).
 SAMPLED_ROWS = 64
@@ -86,32 +85,24 @@ class FeatureStore:
     def create(cls, store, fp: dict, *, n: int, rows: int, k: int, block: int,
                dtype) -> FeatureStore:
         """Create the store, or complete one whose creation was interrupted; never overwrites."""
-        group = zarr.open_group(store, mode="a")
-        config = {"write_empty_chunks": True}
-        if ATTR not in group.attrs:
-            if any(True for _ in group.keys()):
-                raise ValueError(NOT_A_STORE.format(store=describe(store)))
-            group.attrs[ATTR] = {"fingerprint": fp, "layout": LAYOUT}
-        if "features" not in group:
-            group.create_array("features", shape=(n * rows, k), chunks=(block * rows, k),
-                               dtype=dtype, fill_value=np.nan, compressors=None, config=config)
-        if "checksums" not in group:
-            group.create_array("checksums", shape=(-(-n // block),), chunks=(1,), dtype="uint64",
-                               fill_value=0, compressors=None, config=config)
+        create_arrays(store, fp, {
+            "features": dict(shape=(n * rows, k), chunks=(block * rows, k), dtype=dtype,
+                             fill_value=np.nan),
+            "checksums": dict(shape=(-(-n // block),), chunks=(1,), dtype="uint64",
+                              fill_value=0),
+        })
         return cls.open(store, rows)
 
     @classmethod
     def open(cls, store, rows: int) -> FeatureStore:
-        group = zarr.open_group(store, mode="r+")
-        config = {"write_empty_chunks": True}
-        return cls(describe(store), group["features"].with_config(config),
-                   group["checksums"].with_config(config), rows)
+        features, sums = open_arrays(store, "features", "checksums")
+        return cls(describe(store), features, sums, rows)
 
     def write(self, i: int, r0: int, values: np.ndarray) -> None:
         """Write block i (examples from r0), then its checksum: done only once both are."""
         values = np.ascontiguousarray(values, dtype=self.features.dtype)
         self.features[r0 * self.rows:r0 * self.rows + values.shape[0]] = values
-        self.checksums[i] = np.uint64(_checksum([values]))
+        self.checksums[i] = np.uint64(checksum([values]))
 
     def status(self, todo: list[tuple[int, int, int]]) -> tuple[list, int]:
         """(blocks (i, r0, r1) still to compute, how many of them failed verification)."""
@@ -124,7 +115,7 @@ class FeatureStore:
                 continue
             try:
                 part = self.features[r0 * self.rows:r1 * self.rows]
-                ok = _checksum([part]) == want
+                ok = checksum([part]) == want
             except Exception:  # a truncated or garbled chunk fails to decode
                 ok = False
             if not ok:

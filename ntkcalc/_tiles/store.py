@@ -6,7 +6,8 @@ Layout of ``<store>/``:
   examples), no compression, fill value NaN so an unwritten tile reads as NaN;
 - ``checksums``: uint64 array (row blocks, column blocks), one chunk per entry; entry (i, j) is
   written only after the tile's chunk(s) and is a BLAKE2b checksum of their bytes (0 = not done);
-- attribute ``"ntkcalc"``: the kernel's fingerprint (see `fingerprint`);
+- attribute ``"ntkcalc"``: the kernel's fingerprint (see `fingerprint`) and the model's number of
+  outputs O (``"num_outputs"``, beside the fingerprint: a trace kernel's shape does not show it);
 - attribute ``"ntkcalc_source"`` (optional): which checkpoint (path, step) and model produced the
   kernel, written by ``ntkcalc kernel`` (`record_source`).
 
@@ -246,11 +247,40 @@ def clear(store) -> None:
     zarr.open_group(store, mode="w")
 
 
-def _checksum(parts) -> int:
+def checksum(parts) -> int:
+    """BLAKE2b checksum (8 bytes) of the arrays' bytes; never 0, which marks "not done"."""
     h = hashlib.blake2b(digest_size=8)
     for p in parts:
         h.update(np.ascontiguousarray(p).tobytes())
-    return int.from_bytes(h.digest(), "little") | 1  # never 0, which means "not done"
+    return int.from_bytes(h.digest(), "little") | 1
+
+
+#: Chunks are written even when they equal the fill value (a block of zeros is still done).
+WRITE_CONFIG = {"write_empty_chunks": True}
+
+
+def create_arrays(store, fingerprint: dict, arrays: dict[str, dict], *, record=None):
+    """Create a store's group and arrays, or complete a creation that was interrupted; never
+    overwrites. ``arrays``: name -> `zarr.Group.create_array` arguments (uncompressed, written
+    even when empty). The fingerprint goes first, so a run killed while creating the arrays
+    resumes them; a non-empty group without ntkcalc's record is refused (`NOT_A_STORE`).
+    ``record``: more entries kept beside the fingerprint (e.g. the model's O). Returns the group."""
+    group = zarr.open_group(store, mode="a")
+    if ATTR not in group.attrs:
+        if any(True for _ in group.keys()):
+            raise ValueError(NOT_A_STORE.format(store=describe(store)))
+        group.attrs[ATTR] = {"fingerprint": fingerprint, "layout": LAYOUT, **(record or {})}
+    for name, spec in arrays.items():
+        if name not in group:
+            group.create_array(name, compressors=None, config=WRITE_CONFIG, **spec)
+    return group
+
+
+def open_arrays(store, *names: str) -> list:
+    """The named arrays of an existing store, opened for writing with `WRITE_CONFIG` (a config
+    given to ``open_array`` would be ignored)."""
+    group = zarr.open_group(store, mode="r+")
+    return [group[name].with_config(WRITE_CONFIG) for name in names]
 
 
 @dataclasses.dataclass(eq=False)
@@ -266,30 +296,19 @@ class TileStore:
     @classmethod
     def create(cls, store, fingerprint: dict, plan) -> TileStore:
         """Create the store, or complete one whose creation was interrupted; never overwrites."""
-        group = zarr.open_group(store, mode="a")
         shape = (len(plan.group_names),) + tuple(plan.shape)
-        chunks = (shape[0], plan.block, plan.block) + shape[3:]
         nb = (num_blocks(plan.n1, plan.block), num_blocks(plan.n2, plan.block))
-        config = {"write_empty_chunks": True}
-        if ATTR not in group.attrs:
-            if any(True for _ in group.keys()):
-                raise ValueError(NOT_A_STORE.format(store=describe(store)))
-            # The fingerprint goes first: a run killed while creating the arrays resumes them.
-            group.attrs[ATTR] = {"fingerprint": fingerprint, "layout": LAYOUT}
-        if "kernel" not in group:
-            group.create_array("kernel", shape=shape, chunks=chunks, dtype=plan.dtype,
-                               fill_value=np.nan, compressors=None, config=config)
-        if "checksums" not in group:
-            group.create_array("checksums", shape=nb, chunks=(1, 1), dtype="uint64",
-                               fill_value=0, compressors=None, config=config)
+        create_arrays(store, fingerprint, {
+            "kernel": dict(shape=shape, chunks=(shape[0], plan.block, plan.block) + shape[3:],
+                           dtype=plan.dtype, fill_value=np.nan),
+            "checksums": dict(shape=nb, chunks=(1, 1), dtype="uint64", fill_value=0),
+        }, record={"num_outputs": int(plan.num_outputs)})
         return cls.open(store, plan)
 
     @classmethod
     def open(cls, store, plan) -> TileStore:
-        group = zarr.open_group(store, mode="r+")
-        config = {"write_empty_chunks": True}  # config given to open_array would be ignored
-        return cls(describe(store), group["kernel"].with_config(config),
-                   group["checksums"].with_config(config), plan.symmetric, plan.outputs)
+        kernel, sums = open_arrays(store, "kernel", "checksums")
+        return cls(describe(store), kernel, sums, plan.symmetric, plan.outputs)
 
     # -- tiles ----------------------------------------------------------------------------------
     def _regions(self, t: Tile):
@@ -305,7 +324,7 @@ class TileStore:
             parts.append(np.ascontiguousarray(mirror(values, self.outputs)))
         for region, part in zip(self._regions(t), parts, strict=True):
             self.kernel[region] = part
-        self.checksums[t.i, t.j] = np.uint64(_checksum(parts))
+        self.checksums[t.i, t.j] = np.uint64(checksum(parts))
 
     def done(self) -> np.ndarray:
         """The checksums (row blocks, column blocks); an entry whose chunk cannot be read is 0
@@ -337,7 +356,7 @@ class TileStore:
             parts = [self.kernel[region] for region in self._regions(t)]
         except Exception:  # a truncated or garbled chunk fails to decode
             return False
-        return _checksum(parts) == want
+        return checksum(parts) == want
 
     def count_done(self) -> int:
         return int(np.count_nonzero(self.done()))
@@ -367,6 +386,16 @@ def read_source(store) -> dict | None:
     except Exception:  # noqa: BLE001 - absent or foreign: `inspect` says which
         return None
     return dict(value) if isinstance(value, dict) else None
+
+
+def read_num_outputs(store) -> int | None:
+    """The model's number of outputs O recorded at creation, or None (a store from before it was
+    recorded, or no store)."""
+    try:
+        value = zarr.open_group(store, mode="r").attrs.get(ATTR, {}).get("num_outputs")
+    except Exception:  # noqa: BLE001 - absent or foreign: `inspect` says which
+        return None
+    return value if isinstance(value, int) and not isinstance(value, bool) and value > 0 else None
 
 
 def open_verified(store, *, what: str = "store") -> tuple[TileStore, dict] | None:

@@ -89,8 +89,10 @@ def open_kernel(path, *, group: int | str | None = None) -> StoredKernel:
             a store of `ntkcalc.ntk` holds one group and needs none.
 
     Returns:
-        A `StoredKernel` with ``kind`` (the outputs mode), ``num_outputs`` (O for 'full' and
-        'per_output' kernels, None for 'trace'), ``source`` (provenance, or None) and ``info``
+        A `StoredKernel` with ``kind`` (the outputs mode), ``num_outputs`` (the model's O,
+        recorded in the store when it was written; for a store written before O was recorded,
+        O from the shape of a 'full' or 'diagonal' kernel, else None), ``source`` (provenance,
+        or None) and ``info``
         (``computed`` 0 and ``reused`` every tile: nothing was computed by opening it).
 
     Raises:
@@ -98,7 +100,7 @@ def open_kernel(path, *, group: int | str | None = None) -> StoredKernel:
             is missing or unknown.
     """
     from .blocking import tiles
-    from .store import describe, open_verified, read_source
+    from .store import describe, open_verified, read_num_outputs, read_source
 
     opened = open_verified(path, what="path")
     where = describe(path)
@@ -121,6 +123,8 @@ def open_kernel(path, *, group: int | str | None = None) -> StoredKernel:
     info = RunInfo(where, count, 0, count, 0, int(fp["block"]), 0)
     view = StoredKernel(ts.kernel, index, info)
     view.kind = fp["outputs"]
-    view.num_outputs = int(shape[2]) if len(shape) > 2 else None
+    recorded = read_num_outputs(path)
+    view.num_outputs = recorded if recorded is not None else (
+        int(shape[2]) if len(shape) > 2 else None)
     view.source = read_source(path)
     return view

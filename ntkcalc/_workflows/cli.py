@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import argparse
 import importlib
-import inspect
 import os
 import re
 import sys
@@ -20,8 +19,8 @@ from typing import get_args
 import numpy as np
 
 from .._engine.options import METHODS, OUTPUTS
+from .._words import counted
 
-MISSING_PART = "ntkcalc {command}: error: {what} is not available in this installation ({err})."
 MODEL_SPEC = re.compile(r"^[A-Za-z_][\w.]*:[A-Za-z_][\w.]*$")
 
 
@@ -123,10 +122,12 @@ def build_parser() -> argparse.ArgumentParser:
     _run_arguments(drift)
     drift.add_argument("--outputs", choices=OUTPUTS, default="trace")
 
-    report = _subparser(sub, "report", help="Write the HTML and JSON report of a kernel store.",
+    report = _subparser(sub, "report", help="Write the HTML and JSON report of a kernel store "
+                        "or, again, of a run directory ('ntkcalc run').",
                         example="ntkcalc report kernel.zarr --labels data.npz:y")
     report.add_argument("source", help="kernel store written by 'ntkcalc kernel' or "
-                                       "ntk(..., store=...)")
+                                       "ntk(..., store=...), or a run directory written by "
+                                       "'ntkcalc run' or RunAnalysis.write")
     report.add_argument("--labels", metavar="FILE[:KEY]",
                         help="class labels of the store's examples (.npy, or .npz with :KEY); "
                              "the heat map is sorted by class only with them")
@@ -225,8 +226,9 @@ def _kernel(args) -> int:
         jax.config.update("jax_enable_x64", True)
     from flax import nnx
 
-    from .._adapters.checkpoint import load_checkpoint
+    from .._adapters.net import load_checkpoint
     from .._kernel import ntk
+    from .._tiles.store import record_source
 
     model = factory()
     linen = {} if isinstance(model, nnx.Module) else {"example": x[:1]}
@@ -242,25 +244,16 @@ def _kernel(args) -> int:
         raise type(err)(f"{err} (The variables of {type(model).__name__} were shaped from the "
                         f"first example of --x, of feature shape {x.shape[1:]}: if the checkpoint "
                         "is the right one, --x has the wrong feature shape for it.)") from err
-    accepted = inspect.signature(ntk).parameters
-    extra = {k: v for k, v in (("store", args.store), ("progress", not args.quiet),
-                               ("spot_check", args.spot_check)) if k in accepted}
     n2 = len(x) if x2 is None else len(x2)
     _say(args.quiet, f"kernel {len(x)} x {n2}, outputs {args.outputs}, method {args.method}, "
                      f"{net.num_params:,} parameters")
     start = time.perf_counter()
     k = ntk(net, x, x2, method=args.method, outputs=args.outputs, params=args.params,
-            memory=args.memory, **extra)
+            memory=args.memory, store=args.store, progress=not args.quiet,
+            spot_check=args.spot_check)
     seconds = time.perf_counter() - start
-    if "store" in extra:
-        from .._tiles.store import record_source
-
-        record_source(args.store, _provenance(args))
-        print(f"kernel {tuple(k.shape)} written to the store {args.store} in {seconds:.1f} s")
-    else:
-        np.save(args.store, np.asarray(k))
-        print(f"kernel {tuple(np.shape(k))} written with numpy.save to {args.store} in "
-              f"{seconds:.1f} s (this installation has no resumable kernel store)")
+    record_source(args.store, _provenance(args))
+    print(f"kernel {tuple(k.shape)} written to the store {args.store} in {seconds:.1f} s")
     return 0
 
 
@@ -291,8 +284,9 @@ def _run_inputs(args, command: str) -> tuple[dict, str]:
     x = _load_array(args.data, args.x, flag="--data", command=command, key_flag="--x")
     y = _load_array(args.data, args.y, flag="--data", command=command, key_flag="--y")
     if len(y) != len(x):
-        raise UsageError(f"ntkcalc {command}: error: --y {args.y!r} has {len(y)} rows but --x "
-                         f"{args.x!r} has {len(x)}; they must be the same examples.")
+        raise UsageError(f"ntkcalc {command}: error: --y {args.y!r} has "
+                         f"{counted(len(y), 'row')} but --x {args.x!r} has {len(x)}; they must "
+                         "be the same examples.")
     if args.x64:
         import jax
 
@@ -361,16 +355,9 @@ def _drift(args) -> int:
     return 0
 
 
-def _optional(command: str, module: str, name: str):
-    try:
-        return getattr(importlib.import_module(module), name)
-    except (ImportError, AttributeError) as err:
-        raise UsageError(MISSING_PART.format(command=command, what=f"{module}.{name}",
-                                             err=err)) from None
-
-
 def _demo(args) -> int:
-    run_demo = _optional("demo", "ntkcalc._workflows.demo", "run_demo")
+    from .demo import run_demo
+
     out_dir = args.out_dir or time.strftime("ntkcalc-demo-%Y%m%d-%H%M%S")
     result = run_demo(out_dir, scale=args.scale, progress=not args.quiet)
     print(f"report: {result.report_html}")
@@ -380,7 +367,8 @@ def _demo(args) -> int:
 
 
 def _report(args) -> int:
-    write_report = _optional("report", "ntkcalc._workflows.report", "write_report")
+    from .report import source_phrase, write_report
+
     source = os.path.abspath(args.source).rstrip(os.sep)
     out = args.out or f"{source}-report"
     if os.path.commonpath([source, os.path.abspath(out)]) == source:
@@ -389,10 +377,6 @@ def _report(args) -> int:
                          "directory outside it.")
     extra = {}
     if args.labels is not None:
-        if "labels" not in inspect.signature(write_report).parameters:
-            raise UsageError(MISSING_PART.format(
-                command="report", what="--labels (write_report(labels=...))",
-                err="this write_report takes no labels"))
         path, _, key = args.labels.partition(":")
         extra["labels"] = _load_array(path, key or None, flag="--labels", command="report",
                                       key_flag="--labels FILE:KEY")
@@ -401,14 +385,14 @@ def _report(args) -> int:
 
     made = read_source(args.source)
     if made is not None:
-        print(f"kernel of checkpoint {made.get('checkpoint')} step {made.get('step')}, model "
-              f"{made.get('model')}")
+        print(f"kernel of {source_phrase(made)}")
     print(f"report: {html}\ndata: {data}")
     return 0
 
 
 def _bench(args) -> int:
-    bench = _optional("bench", "ntkcalc.bench", "main")
+    from ..bench import main as bench
+
     return int(bench(args.args) or 0)
 
 

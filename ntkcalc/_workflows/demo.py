@@ -23,7 +23,7 @@ import json
 import os
 import sys
 import time
-from typing import Literal
+from typing import Literal, get_args
 
 import flax.linen as nn
 import jax
@@ -35,6 +35,7 @@ import scipy.sparse.linalg
 
 from .._adapters.net import Net
 from .._analysis._result import Result
+from .._engine.options import check_choice
 from .._kernel import ntk
 from .data import pump_readings
 from .report import RunDescription
@@ -207,8 +208,7 @@ def _check_args(out_dir, scale, progress) -> str:
     if not isinstance(out_dir, str | os.PathLike):
         raise TypeError(
             f"`out_dir` must be a path (str or os.PathLike), got {type(out_dir).__name__}.")
-    if scale not in _SETTINGS:
-        raise ValueError(f"`scale` must be one of {sorted(_SETTINGS)}, got {scale!r}.")
+    check_choice("scale", scale, get_args(Scale))
     if not isinstance(progress, bool):
         raise TypeError(f"`progress` must be True or False, got {progress!r}.")
     path = os.path.abspath(os.fspath(out_dir))

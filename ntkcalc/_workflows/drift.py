@@ -22,15 +22,14 @@ on it will miss.
 from __future__ import annotations
 
 import dataclasses
-import inspect
 import json
 import os
 from collections.abc import Sequence
 
 import numpy as np
 
-from .._adapters.checkpoint import checkpoint_steps, load_checkpoint
-from .._adapters.net import Net
+from .._adapters.checkpoint import checkpoint_steps
+from .._adapters.net import Net, load_checkpoint
 from .._analysis import _checks
 from .._analysis._checks import COND_WARN
 from .._analysis._result import Result
@@ -39,8 +38,9 @@ from .._analysis.expressivity import feature_rank
 from .._analysis.laziness import KERNEL_THRESHOLD, Laziness, init_spread, laziness
 from .._analysis.laziness import relative_change as _relative_change
 from .._analysis.spectrum import spectrum
-from .._engine.options import OUTPUTS, Outputs, check_choice
+from .._engine.options import METHODS, OUTPUTS, Method, Outputs, check_choice
 from .._kernel import ntk
+from .._words import counted
 
 #: The laziness threshold on distance and relative change: `laziness.KERNEL_THRESHOLD`.
 DEFAULT_THRESHOLD = KERNEL_THRESHOLD
@@ -165,7 +165,8 @@ def _step_numbers(steps, count: int) -> np.ndarray:
         raise ValueError(f"`steps` must be a 1-D sequence of integers, got {steps!r}.")
     if arr.size != count:
         raise ValueError(
-            f"`steps` has {arr.size} entries but there are {count} Nets. Pass one step per Net."
+            f"`steps` has {counted(arr.size, 'entry', 'entries')} but there are "
+            f"{counted(count, 'Net')}. Pass one step per Net."
         )
     if np.any(np.diff(arr) <= 0):
         raise ValueError(
@@ -233,11 +234,6 @@ def _targets(y: np.ndarray, outputs: str, kernel: np.ndarray) -> np.ndarray:
     return y
 
 
-def _kernel_options(progress: bool) -> dict:
-    accepted = inspect.signature(ntk).parameters
-    return {"progress": progress} if "progress" in accepted else {}
-
-
 # -- the run --------------------------------------------------------------------------------------
 def drift(
     source: str | os.PathLike | Sequence[Net],
@@ -251,7 +247,7 @@ def drift(
     item: str | None = None,
     subtree: str | None = None,
     outputs: Outputs = "trace",
-    method: str = "auto",
+    method: Method = "auto",
     params=None,
     memory=None,
     top: int = 5,
@@ -287,6 +283,7 @@ def drift(
         `Drift`.
     """
     outputs = check_choice("outputs", outputs, OUTPUTS)
+    check_choice("method", method, METHODS)
     if isinstance(top, bool) or not isinstance(top, int | np.integer) or top < 1:
         raise ValueError(f"`top` must be an integer >= 1, got {top!r}.")
     if not isinstance(threshold, int | float) or not 0 < threshold < 1:
@@ -328,7 +325,7 @@ def drift(
         )
 
     options = dict(method=method, outputs=outputs, params=params, memory=memory,
-                   **_kernel_options(progress))
+                   progress=progress)
     kernels, squares, ranks, specs, aligns = [], [], [], [], []
     for net in nets:
         k = np.asarray(ntk(net, x, **options))
@@ -357,7 +354,7 @@ def _summarize(steps, kernels, squares, specs, aligns, ranks, *, outputs, thresh
     relative = np.array([_relative_change(k, k0) for k in squares])
     cond = np.array([s.condition_number for s in specs])
     verdict = laziness(relative_change=relative, distance=to_initial, steps=steps, spread=spread,
-                       kernel_threshold=threshold)
+                       kernel_threshold=threshold, kind=outputs, precision=kernels[0].dtype)
     lazy = verdict.lazy
     notes = [] if lazy else [MOVED_NOTE]
     ill = cond > COND_WARN

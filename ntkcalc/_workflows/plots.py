@@ -8,6 +8,7 @@ estimates, grey for reference lines.
 from __future__ import annotations
 
 import io
+import textwrap
 
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
@@ -20,6 +21,16 @@ REFERENCE = "#777777"
 
 #: The report's one error convention, named in every label that shows an error.
 MSE_LABEL = "MSE: mean over examples and outputs of (f − y)²"
+
+#: Characters per line of a y-axis label: a longer one runs past a 3.6-inch-high figure (the
+#: report's) and is clipped, so it is broken into lines at spaces.
+AXIS_LINE = 30
+
+
+def axis_label(text: str) -> str:
+    """``text`` broken at spaces into lines of at most `AXIS_LINE` characters, so a long y-axis
+    label (`MSE_LABEL`) fits beside the axes instead of being clipped at the figure's edges."""
+    return "\n".join(textwrap.wrap(text, AXIS_LINE, break_long_words=False)) or text
 
 
 def _figure(width: float = 6.4, height: float = 3.6, *, cols: int = 1) -> tuple[Figure, list]:
@@ -34,7 +45,7 @@ def _figure(width: float = 6.4, height: float = 3.6, *, cols: int = 1) -> tuple[
 
 def _label(ax, x: str, y: str, title: str, *, legend: bool = False) -> None:
     ax.set_xlabel(x)
-    ax.set_ylabel(y)
+    ax.set_ylabel(axis_label(y))
     ax.set_title(title)
     if legend:
         ax.legend(frameon=False, fontsize=8)

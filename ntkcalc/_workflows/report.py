@@ -34,7 +34,8 @@ import numpy as np
 from .._version import __version__
 from .._analysis import _checks, spectrum
 from .._analysis._checks import COND_WARN
-from .._analysis._result import Result
+from .._analysis._result import Result, read_record
+from .._words import counted
 from . import plots
 from .study import RunAnalysis, _plain
 
@@ -43,6 +44,8 @@ SECTIONS = ("summary", "cautions", "spectrum", "heatmap", "drift", "groups", "fo
 
 #: The complete result `RunAnalysis.write` puts beside the report.
 RESULT = "result.json"
+#: The same result and its `RunDescription` as they are, arrays included (`RunAnalysis.read`).
+RECORD = "result.npz"
 
 _CSS = """
 body { font-family: system-ui, -apple-system, "Segoe UI", sans-serif; color: #222;
@@ -96,23 +99,37 @@ def _load_store(path: str) -> np.ndarray | None:
         )
     if np.isnan(k).any():
         raise ValueError(
-            f"`source`={path!r} is an incomplete kernel store ({int(np.isnan(k).sum())} entries "
-            "not computed): run the same `ntk(..., store=...)` call again to finish it."
+            f"`source`={path!r} is an incomplete kernel store "
+            f"({counted(int(np.isnan(k).sum()), 'entry', 'entries')} not computed): run the "
+            "same `ntk(..., store=...)` call again to finish it."
         )
     return np.einsum("ijaa->ij", k) if k.ndim == 4 else k
 
 
-def _store_sections(path: str, k: np.ndarray, labels) -> list[_Section]:
+def source_phrase(made: dict | None) -> str:
+    """Where a stored kernel came from, in words, from what the store records (`read_source`)."""
+    if made is None:
+        return ("not recorded (`ntkcalc kernel` records the checkpoint and model; "
+                "`ntk(..., store=...)` does not)")
+    step = made.get("step")
+    parts = [f"checkpoint {made.get('checkpoint')}" + ("" if step is None else f" step {step}")]
+    parts += [f"{key} {made[key]}" for key in ("item", "subtree") if made.get(key) is not None]
+    return ", ".join([*parts, f"model {made.get('model')}"])
+
+
+def _store_sections(path: str, k: np.ndarray, labels, made: dict | None) -> list[_Section]:
     spec = spectrum(k)
     cautions = _numeric_cautions(spec, str(k.dtype))
     summary = [
-        f"Kernel store {path}: K(X, X) over {k.shape[0]} examples, {k.dtype}.",
+        f"Kernel store {path}: K(X, X) over {k.shape[0]} examples, {k.dtype}. Source: "
+        f"{source_phrase(made)}.",
         f"Spectrum: decay exponent {spec.decay_exponent:.2f}, effective rank "
         f"{spec.effective_rank:.1f}, condition number {_fmt(spec.condition_number)}.",
         f"Cautions: {len(cautions) or 'none'}.",
     ]
     return [
-        _Section("summary", "Summary", "", {"lines": summary}, items=tuple(summary)),
+        _Section("summary", "Summary", "", {"lines": summary, "kernel_source": made},
+                 items=tuple(summary)),
         _Section("cautions", "Cautions", "" if cautions else "None.", {"items": cautions},
                  items=tuple(cautions)),
         _spectrum_section(spec, ""),
@@ -185,17 +202,47 @@ def _load(source, labels) -> tuple[str, str, list[_Section]]:
     path = os.path.abspath(os.fspath(source))
     k = _load_store(path) if os.path.isdir(path) else None
     if k is not None:
-        return path, "kernel store", _store_sections(path, k, _store_labels(labels, k.shape[0]))
-    if os.path.isfile(os.path.join(path, RESULT)):
-        raise ValueError(
-            f"`source`={path!r} is a run directory: its report was written with it "
-            "(report.html, report.json). To write it again, call `write` on the `RunAnalysis` "
-            "(`analyse_run`, or `DemoResult.analysis`)."
-        )
+        from .._tiles.store import read_source
+
+        return path, "kernel store", _store_sections(path, k, _store_labels(labels, k.shape[0]),
+                                                     read_source(path))
     raise FileNotFoundError(
         f"`source`={path!r} is no ntkcalc kernel store: pass the `store` of "
         "`ntk(..., store=...)`, or a `RunAnalysis`."
     )
+
+
+def _is_run_directory(source) -> bool:
+    return isinstance(source, str | os.PathLike) and any(
+        os.path.isfile(os.path.join(os.fspath(source), name)) for name in (RESULT, RECORD))
+
+
+def read_run(directory, *, name: str = "directory") -> tuple[RunAnalysis, RunDescription | None]:
+    """The `RunAnalysis` and `RunDescription` (or None) `RunAnalysis.write` saved in
+    ``directory``, every field as it was; ``name`` is the argument's, for errors."""
+    if not isinstance(directory, str | os.PathLike):
+        raise TypeError(f"`{name}` must be a directory path, got {type(directory).__name__}.")
+    path = os.path.abspath(os.fspath(directory))
+    record = os.path.join(path, RECORD)
+    if not os.path.isfile(record) and not os.path.isfile(os.path.join(path, RESULT)):
+        raise FileNotFoundError(f"`{name}`={path!r} holds no {RECORD}: pass a directory "
+                                "written by `RunAnalysis.write`.")
+    if not os.path.isfile(record):
+        raise ValueError(
+            f"`{name}`={path!r} is a run directory written before results were saved whole: it "
+            f"has {RESULT} (the numbers) but no {RECORD}. Call `write` on the `RunAnalysis` "
+            "again (`analyse_run`, or `DemoResult.analysis`) to write a directory that reloads."
+        )
+    try:
+        saved = read_record(record)
+    except (OSError, ValueError, KeyError, TypeError) as err:
+        raise ValueError(f"{record!r} is damaged ({err}): call `write` on the `RunAnalysis` "
+                         "again.") from None
+    if not (isinstance(saved, dict) and isinstance(saved.get("analysis"), RunAnalysis)
+            and isinstance(saved.get("description"), RunDescription | None)):
+        raise ValueError(f"{record!r} holds no saved RunAnalysis: call `write` on the "
+                         "`RunAnalysis` again.")
+    return saved["analysis"], saved["description"]
 
 
 def _power_law(spec) -> float:
@@ -279,8 +326,8 @@ def _class_names(a, desc: RunDescription) -> list[str]:
     if desc.class_names is not None:
         if len(desc.class_names) != a.num_outputs:
             raise ValueError(
-                f"`description.class_names` has {len(desc.class_names)} names; the run has "
-                f"{a.num_outputs} outputs. Pass one name per output.")
+                f"`description.class_names` has {counted(len(desc.class_names), 'name')}; "
+                f"the run has {counted(a.num_outputs, 'output')}. Pass one name per output.")
         return list(desc.class_names)
     return [str(c) for c in range(a.num_outputs)]
 
@@ -347,8 +394,9 @@ def _risk_numbers(c) -> dict:
 
 def _analysis_summary(a, desc, spec, fc, rk, ranks, cautions) -> list[str]:
     d = a.drift
-    run = (f"Data and run: {a.num_train} train / {a.num_test} test {desc.data}, {a.num_outputs} "
-           f"outputs; {desc.model} ({a.num_params:,} parameters, {a.dtype}); checkpoints at steps "
+    run = (f"Data and run: {a.num_train} train / {a.num_test} test {desc.data}, "
+           f"{counted(a.num_outputs, 'output')}; {desc.model} ({a.num_params:,} parameters, "
+           f"{a.dtype}); checkpoints at steps "
            f"{', '.join(map(str, a.steps.tolist()))}")
     run += ("; no forecasts (no learning rate given)." if fc is None else
             f"; forecasts at lr={fc['lr']:.3g} (stability limit {fc['max_stable_lr']:.3g}).")
@@ -622,12 +670,13 @@ def write_report(source, *, out=None, description: RunDescription | None = None,
     """Write ``report.html`` and ``report.json`` for a run or a kernel store.
 
     Args:
-        source: a `RunAnalysis` (from `analyse_run`), or a kernel store of K(X, X) written by
-            ``ntk(..., store=...)``.
+        source: a `RunAnalysis` (from `analyse_run`); a directory `RunAnalysis.write` wrote (the
+            result read back with `RunAnalysis.read`, the report written again); or a kernel
+            store of K(X, X) written by ``ntk(..., store=...)``.
         out: directory for the two files (created); required for a `RunAnalysis`, default the
-            store's own directory.
+            run directory's or the store's own directory.
         description: for a `RunAnalysis`, a `RunDescription` of the data, model and training
-            (default: a generic one).
+            (default: the one saved in a run directory, else a generic one).
         labels: for a kernel store, (N,) integer classes of its examples: the heat map is then
             sorted by class with the mean kernel of each pair of classes (a `RunAnalysis` knows
             its labels).
@@ -640,6 +689,10 @@ def write_report(source, *, out=None, description: RunDescription | None = None,
     if description is not None and not isinstance(description, RunDescription):
         raise TypeError(
             f"`description` must be a RunDescription or None, got {type(description).__name__}.")
+    if _is_run_directory(source):
+        out = source if out is None else out
+        source, saved = read_run(source, name="source")
+        description = saved if description is None else description
     if isinstance(source, RunAnalysis):
         if out is None:
             raise ValueError("`out` is required for a RunAnalysis: the directory to write into.")
@@ -668,6 +721,7 @@ def write_report(source, *, out=None, description: RunDescription | None = None,
     document = {
         "title": title, "ntkcalc_version": __version__, "source": path,
         "summary": by_id["summary"]["lines"], "verdict": by_id["summary"].get("verdict"),
+        "kernel_source": by_id["summary"].get("kernel_source"),
         "cautions": by_id["cautions"]["items"],
         "sections": {s.id: s.numbers for s in sections if s.id not in ("summary", "cautions")},
     }

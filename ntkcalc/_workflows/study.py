@@ -43,7 +43,7 @@ import numpy as np
 from .._adapters.net import Net
 from .._analysis import _checks
 from .._analysis._batches import batch_slices, pad_rows
-from .._analysis._result import Result
+from .._analysis._result import Result, save_record
 from .._analysis.alignment import alignment
 from .._analysis.expressivity import FeatureRank, feature_rank
 from .._analysis.forecast import Forecast, forecast, gap_scale
@@ -287,7 +287,7 @@ class RunAnalysis(Result):
                 fc.plot(t, a.test_mse, "--", color=line.get_color(),
                         label=f"test, from step {a.step}")
         fc.set_yscale("log")
-        fc.set(xlabel="training step", ylabel=plots.MSE_LABEL,
+        fc.set(xlabel="training step", ylabel=plots.axis_label(plots.MSE_LABEL),
                title="Lazy forecast from each chosen checkpoint")
         fc.legend(fontsize="small", frameon=False)
         for a in self.checkpoints:
@@ -301,10 +301,11 @@ class RunAnalysis(Result):
     def write(self, directory, *, description=None) -> tuple[str, str]:
         """Write ``result.json`` (`to_json`, every field) and the report (`write_report`:
         ``report.html``, self-contained with its figures as base64 PNG, and ``report.json``, every
-        number it shows) into ``directory`` (created).
+        number it shows) into ``directory`` (created), with ``result.npz``, the result and
+        ``description`` as they are (arrays included), for `read` and ``write_report(directory)``.
 
         Args:
-            directory: where the three files go.
+            directory: where the files go.
             description: a `RunDescription` of the data, model and training (what the numbers
                 cannot say), or None.
 
@@ -312,12 +313,23 @@ class RunAnalysis(Result):
             ``(html_path, json_path)``: ``report.html`` and ``report.json``, as `write_report`
             returns them; ``result.json`` is beside them.
         """
-        from .report import RESULT, write_report  # the report renders this result
+        from .report import RECORD, RESULT, write_report  # the report renders this result
 
         html_path, json_path = write_report(self, out=directory, description=description)
         with open(os.path.join(os.path.dirname(html_path), RESULT), "w", encoding="utf-8") as fh:
             fh.write(self.to_json(indent=1))
+        save_record({"analysis": self, "description": description},
+                    os.path.join(os.path.dirname(html_path), RECORD))
         return html_path, json_path
+
+    # -- reading back (`write` saved it) ---------------------------------------------------
+    @classmethod
+    def read(cls, directory) -> RunAnalysis:
+        """The `RunAnalysis` that `write` saved in ``directory``, every field as it was (from its
+        ``result.npz``; ``result.json`` holds the same numbers for people and other programs)."""
+        from .report import read_run
+
+        return read_run(directory)[0]
 
 
 # -- the workflow ---------------------------------------------------------------------------------
@@ -466,7 +478,8 @@ def analyse_run(
     if first is not None and first.gap is not None:
         verdict = laziness(relative_change=dr.relative_change, distance=dr.distance_to_initial,
                            steps=dr.steps, forecast_gap=first.gap, gap_steps=first.gap_steps,
-                           spread=dr.laziness.spread, kernel_threshold=threshold)
+                           spread=dr.laziness.spread, kernel_threshold=threshold,
+                           kind=dr.laziness.kind, precision=dr.laziness.precision)
     # the drift's own note on a moved kernel is its verdict without the forecast gap: kept only
     # when the one verdict agrees
     notes = [c for c in dr.notes if c != MOVED_NOTE or not verdict.lazy]

@@ -3,7 +3,7 @@ throughput on 1, 2 and 4 forced CPU devices.
 
 Each function returns rows ``{model, N, method, outputs, seconds, peak_rss_gb, notes}`` for
 ``python -m ntkcalc.bench``. Every measurement runs in a fresh subprocess (``python -m
-ntkcalc._tiles.bench_scale <json>``) so peak RSS is that run's alone and XLA flags apply; the child
+ntkcalc._bench.scale <json>``) so peak RSS is that run's alone and XLA flags apply; the child
 runs in float32 (JAX's default) with the library's "highest" matmul precision.
 
 Model: MLP 784-512-512-512-10 (tanh), 932,362 parameters, N(0, 1/fan_in) weights, Gaussian inputs.

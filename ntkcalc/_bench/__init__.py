@@ -1,0 +1,1 @@
+"""Benchmarks beside `python -m ntkcalc.bench`: the dataset-scale rows (`scale.py`)."""
