@@ -79,8 +79,8 @@ def _factor_steps(program: Program):
     """Jitted ``(factors, pull, push)`` from the structured factors of ``program``."""
     a_dim = basis_size(program.outputs, program.num_outputs)
     an = program.analysis
-    rows = tuple(an.uses[k][0].in_avals[0].shape[0]
-                 if kind in ("factored", "streamed") and an.uses[k][0].rule.name == "embed" else 0
+    rows = tuple(an.uses[k][0].rule.looked_up_rows(an.uses[k][0])
+                 if kind in ("factored", "streamed") else 0
                  for k, kind in enumerate(program.kinds))
 
     own = program.outputs == "trace"  # Σ_a J_a J_aᵀ: each probe keeps its own output a
@@ -118,7 +118,7 @@ def representations(plan, *, itemsize: int) -> tuple[Program, float]:
         use = an.uses[k][0]
         bsz, t, c, r = st.factored_sizes(use)
         c += 1 if program.folds and program.folds[k] is not None else 0
-        factors = bsz * t * (1 if use.rule.name == "embed" else c) + a * bsz * t * r
+        factors = bsz * t * use.rule.stored_inputs(c) + a * bsz * t * r
         dense = a * bsz * c * r
         kinds[k] = "dense" if dense <= factors else "factored"
         total += min(dense, factors) * itemsize
