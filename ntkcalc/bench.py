@@ -171,6 +171,8 @@ def _child(spec: dict) -> dict:
     jax.config.update("jax_default_matmul_precision", "highest")
     net, x = _model(spec["model"])
     x = x[: spec["n"]]
+    if "eigen" in spec:
+        return eigen_child(net, x, spec["method"], spec["eigen"])
     out: dict = {}
     if spec["method"] == "recipe":
         fn = _recipe(net, spec["outputs"])
@@ -241,6 +243,50 @@ def jacobian_memory_row(*, log=print) -> dict:
     return row
 
 
+def eigen_child(net, x, method: str, top: int) -> dict:
+    """Top ``top`` eigenvalues of the trace kernel: scipy ``eigsh`` (ARPACK Lanczos, tol 1e-6:
+    float32 products carry ~1e-7 relative error) on `ntk_operator` with ``method``, or the dense
+    kernel from `ntk` plus ``numpy.linalg.eigh`` ("dense"). ``seconds`` includes building the
+    operator (its factors) or the kernel; ``rel_err``: largest relative difference of the
+    eigenvalues from the dense ones."""
+    import resource
+
+    import numpy as np
+    import scipy.sparse.linalg as spla
+
+    import ntkcalc
+
+    t0 = time.perf_counter()
+    dense = np.linalg.eigh(np.asarray(ntkcalc.ntk(net, x, progress=False), np.float64))[0]
+    dense_s = time.perf_counter() - t0
+    out = {"seconds": dense_s, "first": dense_s}
+    if method != "dense":
+        t0 = time.perf_counter()
+        op = ntkcalc.ntk_operator(net, x, method=method)
+        vals = spla.eigsh(op, k=top, which="LA", tol=1e-6, return_eigenvectors=False)
+        out = {"seconds": time.perf_counter() - t0, "matvecs": op.matvecs}
+        out["first"] = out["seconds"]
+        top_dense = dense[::-1][:top]
+        out["rel_err"] = float(np.max(np.abs(np.sort(vals)[::-1] - top_dense) / top_dense))
+    out["peak_rss_gb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6
+    return out
+
+
+def eigen_rows(*, n: int = 2000, top: int = 10, log=print) -> list[dict]:
+    """Top-10 eigenvalues of the benchmark MLP's trace kernel at N = 2,000: matrix-free by
+    products and by factors, against the dense kernel plus eigh."""
+    table = []
+    for method in ("dense", "factors", "products"):
+        res = spawn("ntkcalc.bench", {"model": "mlp", "n": n, "outputs": "trace",
+                                      "method": method, "eigen": top})
+        row = {"model": "mlp", "N": n, "outputs": "trace", "method": f"eigsh top-{top} "
+               f"{method}" if method != "dense" else f"ntk + eigh top-{top}", **res}
+        table.append(row)
+        log(_format_row(row) + (f" matvecs={res['matvecs']} rel_err={res['rel_err']:.1e}"
+                                if "matvecs" in res else ""))
+    return table
+
+
 def _seconds(t: float) -> str:
     return f"{t:9.3f} s " if t >= 0.01 else f"{1e3 * t:9.3f} ms"
 
@@ -305,6 +351,9 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--sketch", action="store_true",
                         help="also run the sketched-features rows (accuracy against the exact "
                              "kernel at N=4000, throughput at N=100,000 from a memmap)")
+    parser.add_argument("--eigen", action="store_true",
+                        help="only the matrix-free rows: top-10 eigenvalues of the MLP trace "
+                             "kernel at N=2000 by ntk_operator (factors, products) and dense")
     parser.add_argument("--model", action="append", choices=sorted(MODELS),
                         help="only the rows of this model (repeatable)")
     parser.add_argument("--json", help="write every row to this JSON file")
@@ -313,6 +362,9 @@ def main(argv: list[str] | None = None) -> int:
 
     print(f"ntkcalc bench on {platform.machine()} {os.cpu_count()} CPU cores, "
           f"python {platform.python_version()}")
+    if args.eigen:
+        eigen_rows()
+        return 0
     rows = QUICK if args.quick else ROWS
     if args.model:
         rows = [r for r in rows if r[0] in args.model]

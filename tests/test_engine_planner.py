@@ -105,6 +105,11 @@ def test_reservation_shrinks_tiles_as_ntk_runs(monkeypatch):
     assert stored.reserved == 0 and in_memory.reserved > 0
     assert in_memory.block < stored.block
     assert "115 KB reserved" in str(in_memory)
+    # A caller that never builds the kernel (the matrix-free operator) reserves nothing.
+    with pytest.raises(MemoryError, match="alone exceeds"):
+        plan_request(req, outputs="full", memory="60KB", method="auto")
+    free = plan_request(req, outputs="full", memory="60KB", method="auto", reserve=False)
+    assert free.reserved == 0 and free.store is None
 
 
 def test_plan_with_store_is_what_ran_and_adopts_the_store(monkeypatch, tmp_path):

@@ -20,7 +20,6 @@ BAD = "bogus"
 # there. Remove an entry when its check does, never add one.
 ELSEWHERE = {
     ("analyse_run", "loss"): "_workflows/study.py",
-    ("ntk_operator", "outputs"): "_analysis/operator.py",
 }
 
 
@@ -53,6 +52,9 @@ CALLS = {
     ("ntk_features", "method"): lambda bad: ntkcalc.ntk_features(_net(), X, k=4, method=bad),
     ("KernelArray", "kind"): lambda bad: ntkcalc.KernelArray(np.eye(2), kind=bad, num_outputs=1),
     ("laziness", "kind"): lambda bad: ntkcalc.laziness(distance=0.1, kind=bad),
+    ("ntk_operator", "outputs"): lambda bad: ntkcalc.ntk_operator(_net(), X, outputs=bad),
+    ("ntk_operator", "method"): lambda bad: ntkcalc.ntk_operator(_net(), X, method=bad),
+    ("ntk_operator", "dtype"): lambda bad: ntkcalc.ntk_operator(_net(), X, dtype=bad),
     ("run_demo", "scale"): lambda bad: ntkcalc.run_demo("never-written", scale=bad),
 }
 

@@ -10,6 +10,12 @@ Outputs = Literal["full", "trace", "diagonal", "logit-sum"]
 METHODS: tuple[str, ...] = get_args(Method)
 OUTPUTS: tuple[str, ...] = get_args(Outputs)
 
+# The matrix-free operator (`ntk_operator`): its square outputs modes, and how it applies Θ.
+OperatorOutputs = Literal["trace", "full", "logit-sum"]
+ProductMethod = Literal["auto", "products", "factors"]
+OPERATOR_OUTPUTS: tuple[str, ...] = get_args(OperatorOutputs)
+PRODUCT_METHODS: tuple[str, ...] = get_args(ProductMethod)
+
 OUTPUTS_DOC = """\
 - ``"full"``: (N1, N2, O, O), every pair of outputs;
 - ``"trace"``: (N1, N2), Σ_a K[:, :, a, a];

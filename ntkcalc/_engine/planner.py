@@ -591,11 +591,14 @@ def result_bytes(req: Request, outputs: str) -> int:
 
 
 def plan_request(req: Request, *, outputs: str, memory, method: str, store: str | None = None,
-                 stored: dict | None = None, devices=None, rates: Rates | None = None) -> Plan:
+                 stored: dict | None = None, devices=None, rates: Rates | None = None,
+                 reserve: bool | None = None) -> Plan:
     """The plan of a validated request (see `plan`): budget, reservation, devices, store.
 
     ``store`` is the store's location (None: in memory) and ``stored`` the fingerprint found
     there (None: empty). ``devices`` are validated JAX devices (default all local devices).
+    ``reserve``: whether the result is held in memory (None: when there is no store; False
+    for a caller that never builds the kernel, e.g. a matrix-free operator).
 
     Budget: ``memory`` (default half of what `cost.available_memory` reports for the devices).
     Without a store, on CPU, the result (groups × kernel bytes) is reserved first; on an
@@ -613,7 +616,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str, store: str 
         want = stored["method"]  # resume in the store's method
     costed = _costed(ctx, want)
     host = shares_host_memory(devs)
-    result = result_bytes(req, outputs) if store is None else 0
+    result = result_bytes(req, outputs) if (store is None if reserve is None else reserve) else 0
     reserved = result if host else 0
     if not host and result > C.DEFAULT_MEMORY_FRACTION * C.host_memory():
         # On an accelerator the result is assembled on the host, outside the device's budget.

@@ -21,8 +21,8 @@ from collections.abc import Callable
 
 import jax
 import jax.numpy as jnp
-from jax import lax
 
+from . import products
 from . import structured as st
 from .contract import contract, dense_from_factored
 from .options import basis_size, tile_shape
@@ -148,40 +148,12 @@ class Program:
         return STEPS[self.method].tile(self, diff, other, state, fa, fb, same)
 
     def _jvp_tile(self, diff, other, state, xa, xb):
-        o, a_dim = self.num_outputs, basis_size(self.outputs, self.num_outputs)
-        logit_sum = self.outputs == "logit-sum"
-        n_a, n_b = xa.shape[0], xb.shape[0]
-        group_of = self.selection.group_index()
-        num_groups = len(self.selection.group_names)
+        def f(d, x):  # (b, O): the per-example function over a batch
+            return jax.vmap(self.example_fn, in_axes=(None, None, None, 0))(d, other, state, x)
 
-        def f_a(d):
-            out = jax.vmap(self.example_fn, in_axes=(None, None, None, 0))(d, other, state, xa)
-            return out.sum(-1) if logit_sum else out
-
-        def column(m):
-            # Basis vector m = (example j of x_b, output direction b).
-            j, b = m // a_dim, m % a_dim
-            out, vjp = jax.vjp(lambda d: self.example_fn(d, other, state, xb[j]), list(diff))
-            u = jnp.ones_like(out) if logit_sum else jax.nn.one_hot(b, o, dtype=out.dtype)
-            (t,) = vjp(u)
-            cols = []
-            for g in range(num_groups):
-                t_g = [tk if group_of[k] == g else jnp.zeros_like(tk) for k, tk in enumerate(t)]
-                col = jax.jvp(f_a, (list(diff),), (t_g,))[1]  # (n_a,) or (n_a, O)
-                if self.outputs in ("trace", "diagonal"):
-                    col = col[:, b]  # only the matching output: never an O×O block
-                cols.append(col)
-            return jnp.stack(cols)
-
-        size = n_b * a_dim
-        cols = lax.map(column, jnp.arange(size), batch_size=min(self.jvp_chunk, size))
-        cols = jnp.moveaxis(cols, 1, 0)  # (G, n_b·A, n_a[, O])
-        if logit_sum:
-            return jnp.swapaxes(cols, 1, 2)  # (G, n_a, n_b)
-        if self.outputs == "full":
-            return jnp.transpose(cols.reshape(num_groups, n_b, o, n_a, o), (0, 3, 1, 4, 2))
-        diag = jnp.transpose(cols.reshape(num_groups, n_b, o, n_a), (0, 3, 1, 2))  # [g, i, j, a]
-        return diag if self.outputs == "diagonal" else diag.sum(-1)
+        return products.tile(f, list(diff), xa, xb, basis=self.basis(diff[0].dtype),
+                             outputs=self.outputs, group_of=self.selection.group_index(),
+                             num_groups=len(self.selection.group_names), chunk=self.jvp_chunk)
 
 
 @functools.lru_cache(maxsize=64)

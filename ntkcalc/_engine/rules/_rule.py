@@ -71,6 +71,10 @@ class Rule:
         """Entries of h stored per position (C for features)."""
         return c
 
+    def looked_up_rows(self, use) -> int:
+        """Rows of the table whose rows h indexes (integer h), or 0 when h holds features."""
+        return 0
+
     def dense_inputs(self, h, use, dtype):
         """h as the floating (B, T, C) input of the dense derivative Σ_t h ⊗ g."""
         return h

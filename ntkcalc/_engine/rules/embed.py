@@ -76,6 +76,10 @@ class Embed(Rule):
         """1: one row index per position."""
         return 1
 
+    def looked_up_rows(self, use) -> int:
+        """V: h holds indices of the table's rows."""
+        return use.in_avals[0].shape[0]
+
     def dense_inputs(self, h, use, dtype):
         """The looked-up rows as one-hot vectors (an index of -1 gives a zero row)."""
         return jax.nn.one_hot(h, use.in_avals[0].shape[0], dtype=dtype)
