@@ -18,6 +18,7 @@ from helpers import ZOO, assert_close, reduce_mode, reference_full
 
 import ntkcalc
 from ntkcalc._engine import cost as C
+from ntkcalc._engine import planner
 from ntkcalc._engine import rates as R
 from ntkcalc._engine.planner import plan_request, prepare, result_bytes
 from ntkcalc._tiles import drive, run
@@ -186,7 +187,10 @@ def test_per_call_cost_is_in_the_estimate(tmp_path):
 def test_pinned_rates_reproduce_the_plan():
     net, x, _ = cnn()
     p1 = ntkcalc.plan(net, x, outputs="full", rates=FIXED, memory="50MB")
+    planner._PLANS.clear()  # planned again from scratch, not the kept plan
     p2 = ntkcalc.plan(net, x, outputs="full", rates=FIXED, memory="50MB")
+    assert p2 is not p1 and ntkcalc.plan(net, x, outputs="full", rates=FIXED,
+                                         memory="50MB") is p2  # a repeated request: kept
     assert (p1.method, p1.block, p1.representations, p1.seconds, p1.estimates) == (
         p2.method, p2.block, p2.representations, p2.seconds, p2.estimates)
     assert p1.rates is FIXED and p1.rate == FIXED.matmul and p1.stream == FIXED.stream
@@ -242,7 +246,7 @@ def test_accelerator_budget_comes_from_its_own_memory(monkeypatch):
     gpus = (_FakeDevice("gpu", 8_000_000, 2_000_000), _FakeDevice("gpu", 9_000_000, 1_000_000))
     assert C.available_memory(gpus) == 6_000_000  # the smaller free memory of the two
     p = plan_request(req, outputs="full", memory=None, method="auto", devices=gpus, rates=FIXED)
-    assert p.memory == int(C.DEFAULT_MEMORY_FRACTION * 6_000_000)
+    assert p.memory == int(C.DEFAULT_MEMORY_FRACTION * 6_000_000)  # in whole MB: 3 MB
     # The result is held on the host: nothing reserved; each device has the whole budget.
     assert p.reserved == 0 and p.working == p.memory and p.devices == gpus
     assert "2 gpu device(s)" in str(p)

@@ -8,6 +8,7 @@ parameter, costs every method with `cost`, and picks the cheapest that fits the 
 from __future__ import annotations
 
 import dataclasses
+import json
 import logging
 import math
 from collections.abc import Callable
@@ -235,18 +236,24 @@ def _trace(req: Request, program: Program):
 _TRACED: dict = {}
 
 
-def _traced(req: Request, base: Program):
-    """(forward FLOPs, activations, structured analysis) of the per-example function, traced
-    once per (Net.call, parameter selection, shapes and dtypes): repeated calls reuse it, and so
-    reuse the compiled steps keyed on the resulting `Program`."""
-    key = (
-        req.net.call, base.treedef, req.selection,
+def _trace_key(req: Request) -> tuple:
+    """What the traced per-example function depends on: the Net's call, the parameter tree and
+    selection, the shapes and dtypes of parameters, state and one input."""
+    return (
+        req.net.call, jax.tree_util.tree_structure(req.params), req.selection,
         tuple((np.shape(d), str(d.dtype)) for d in req.diff),
         tuple((np.shape(o), str(o.dtype)) for o in req.other),
         jax.tree_util.tree_structure(req.state),
         tuple((np.shape(s), str(s.dtype)) for s in jax.tree_util.tree_leaves(req.state)),
         req.x1.shape[1:], str(req.x1.dtype),
     )
+
+
+def _traced(req: Request, base: Program):
+    """(forward FLOPs, activations, structured analysis) of the per-example function, traced
+    once per (Net.call, parameter selection, shapes and dtypes): repeated calls reuse it, and so
+    reuse the compiled steps keyed on the resulting `Program`."""
+    key = _trace_key(req)
     if key not in _TRACED:
         if len(_TRACED) > 64:
             _TRACED.pop(next(iter(_TRACED)))
@@ -590,9 +597,48 @@ def result_bytes(req: Request, outputs: str) -> int:
     return len(req.selection.group_names) * math.prod(shape) * C.itemsize(req.dtype)
 
 
+_PLANS: dict = {}
+
+
 def plan_request(req: Request, *, outputs: str, memory, method: str, store: str | None = None,
                  stored: dict | None = None, devices=None, rates: Rates | None = None,
                  reserve: bool | None = None) -> Plan:
+    """The plan of a validated request (`_plan_request`), kept for a repeated request: the same
+    traced function, sizes, options, devices, rates and budget give the same `Plan` object
+    (the default budget is taken in whole MB, so repeated calls plan alike)."""
+    devs = tuple(jax.local_devices()) if devices is None else tuple(devices)
+    rates = default_rates(req.dtype.name, device=devs[0]) if rates is None else check_rates(
+        rates)
+    budget = C.parse_memory(memory, devices=devs)
+    if memory is None:
+        budget -= budget % 10**6
+    key = (_trace_key(req), outputs, req.x1.shape[0],
+           None if req.x2 is None else req.x2.shape[0], req.num_outputs, str(req.dtype), method,
+           store, None if stored is None else json.dumps(stored, sort_keys=True), devs, rates,
+           budget, reserve)
+    held = store is None if reserve is None else reserve
+    if held and not shares_host_memory(devs):
+        # On an accelerator the result is assembled on the host, outside the device's budget.
+        result, host = result_bytes(req, outputs), C.host_memory()
+        if result > C.DEFAULT_MEMORY_FRACTION * host:
+            raise MemoryError(
+                f"the in-memory kernel ({C.format_bytes(result)}) exceeds half the host memory "
+                f"available ({C.format_bytes(host)}), where it is assembled from the "
+                f"{devs[0].platform} device(s): pass `store=` (e.g. store='kernel.zarr') to "
+                "write it to disk tile by tile.")
+    if key not in _PLANS:
+        made = _plan_request(req, outputs=outputs, memory=memory, budget=budget, method=method,
+                             store=store, stored=stored, devices=devs, rates=rates,
+                             reserve=reserve)
+        if len(_PLANS) > 64:
+            _PLANS.pop(next(iter(_PLANS)))
+        _PLANS[key] = made
+    return _PLANS[key]
+
+
+def _plan_request(req: Request, *, outputs: str, memory, budget: int, method: str,
+                  store: str | None, stored: dict | None, devices: tuple, rates: Rates,
+                  reserve: bool | None) -> Plan:
     """The plan of a validated request (see `plan`): budget, reservation, devices, store.
 
     ``store`` is the store's location (None: in memory) and ``stored`` the fingerprint found
@@ -606,10 +652,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str, store: str 
     D CPU devices share host memory: each device's tiles are planned in 1/D of what is left,
     or on one device when that is too small.
     """
-    devs = tuple(jax.local_devices()) if devices is None else tuple(devices)
-    rates = default_rates(req.dtype.name, device=devs[0]) if rates is None else check_rates(
-        rates)
-    budget = C.parse_memory(memory, devices=devs)
+    devs = devices
     ctx = _context(req, outputs)
     want = method
     if stored is not None and method == "auto" and stored.get("method") in BY_METHOD:
@@ -618,13 +661,6 @@ def plan_request(req: Request, *, outputs: str, memory, method: str, store: str 
     host = shares_host_memory(devs)
     result = result_bytes(req, outputs) if (store is None if reserve is None else reserve) else 0
     reserved = result if host else 0
-    if not host and result > C.DEFAULT_MEMORY_FRACTION * C.host_memory():
-        # On an accelerator the result is assembled on the host, outside the device's budget.
-        raise MemoryError(
-            f"the in-memory kernel ({C.format_bytes(result)}) exceeds half the host memory "
-            f"available ({C.format_bytes(C.host_memory())}), where it is assembled from the "
-            f"{devs[0].platform} device(s): pass `store=` (e.g. store='kernel.zarr') to write it "
-            "to disk tile by tile.")
     working = budget - reserved
     share = len(devs) if len(devs) > 1 and host else 1
     attempts = [(working // share, devs)] + ([(working, devs[:1])] if share > 1 else [])
