@@ -130,6 +130,13 @@ def test_plan_with_store_is_what_ran_and_adopts_the_store(monkeypatch, tmp_path)
     _same(again, ran[-1][0])
     with pytest.raises(MemoryError, match="was written in tiles of"):
         ntkcalc.plan(net, x, outputs="full", memory="20KB", store=store)
+    # Another kernel in the store is refused by the plan itself, even right after a plan of the
+    # same shapes (scaled parameters: the store's record names the parameters).
+    import jax
+
+    scaled = net.replace(params=jax.tree_util.tree_map(lambda v: 2.0 * v, net.params))
+    with pytest.raises(ValueError, match="holds a different kernel: params"):
+        ntkcalc.plan(scaled, x, outputs="full", memory="2GB", store=store)
 
 
 @pytest.mark.parametrize("by_layer", [False, True])

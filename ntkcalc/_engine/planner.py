@@ -8,7 +8,6 @@ parameter, costs every method with `cost`, and picks the cheapest that fits the 
 from __future__ import annotations
 
 import dataclasses
-import json
 import logging
 import math
 from collections.abc import Callable
@@ -605,7 +604,9 @@ def plan_request(req: Request, *, outputs: str, memory, method: str, store: str 
                  reserve: bool | None = None) -> Plan:
     """The plan of a validated request (`_plan_request`), kept for a repeated request: the same
     traced function, sizes, options, devices, rates and budget give the same `Plan` object
-    (the default budget is taken in whole MB, so repeated calls plan alike)."""
+    (the default budget is taken in whole MB, so repeated calls plan alike). A plan against a
+    store's record (``stored``) is made every time: the record names the parameters and
+    inputs, which the key does not."""
     devs = tuple(jax.local_devices()) if devices is None else tuple(devices)
     rates = default_rates(req.dtype.name, device=devs[0]) if rates is None else check_rates(
         rates)
@@ -614,8 +615,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str, store: str 
         budget -= budget % 10**6
     key = (_trace_key(req), outputs, req.x1.shape[0],
            None if req.x2 is None else req.x2.shape[0], req.num_outputs, str(req.dtype), method,
-           store, None if stored is None else json.dumps(stored, sort_keys=True), devs, rates,
-           budget, reserve)
+           store, devs, rates, budget, reserve)
     held = store is None if reserve is None else reserve
     if held and not shares_host_memory(devs):
         # On an accelerator the result is assembled on the host, outside the device's budget.
@@ -626,10 +626,12 @@ def plan_request(req: Request, *, outputs: str, memory, method: str, store: str 
                 f"available ({C.format_bytes(host)}), where it is assembled from the "
                 f"{devs[0].platform} device(s): pass `store=` (e.g. store='kernel.zarr') to "
                 "write it to disk tile by tile.")
-    if key not in _PLANS:
+    if key not in _PLANS or stored is not None:  # a store's record is checked every time
         made = _plan_request(req, outputs=outputs, memory=memory, budget=budget, method=method,
                              store=store, stored=stored, devices=devs, rates=rates,
                              reserve=reserve)
+        if stored is not None:
+            return made
         if len(_PLANS) > 64:
             _PLANS.pop(next(iter(_PLANS)))
         _PLANS[key] = made
