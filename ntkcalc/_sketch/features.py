@@ -256,8 +256,9 @@ def ntk_features(
         x: inputs (N, ...): a numpy array, a memmap (``np.load(path, mmap_mode="r")``) or a zarr
             array; read one block at a time.
         k: features per row. Relative error of one kernel entry ≈ √(c/k) with c between 2 (plain
-            Gaussian projection) and 8 (product projection, rank-one derivative): k = 2000-4000
-            for a few percent (docs/sketch.md has the guidance and measurements).
+            Gaussian projection) and 8 (product projection, rank-one derivative); k = 2048 is
+            the measured recommendation (docs/sketch.md: guidance, limits, measurements;
+            `ntkcalc.plan_features` prices a k).
         outputs: ``"trace"`` (Σ_a Θ_aa: φ (N, k)), ``"logit-sum"`` (Θ of Σ_a f_a: φ (N, k)) or
             ``"full"`` (φ (N·O, k), row i·O + a: ``φ_(i,a) · φ_(j,b)`` estimates Θ_ab(x_i, x_j);
             its diagonal-in-outputs part gives the ``"diagonal"`` kernel).
