@@ -44,7 +44,7 @@ import json
 import os
 import warnings
 from collections.abc import Sequence
-from typing import Literal
+from typing import Literal, get_args
 
 import jax
 import numpy as np
@@ -55,13 +55,14 @@ from .._analysis._batches import batch_slices, pad_rows
 from .._analysis._result import Result, save_record
 from .._analysis.alignment import alignment
 from .._analysis.expressivity import FeatureRank, feature_rank
-from .._analysis.forecast import Forecast, forecast, gap_scale
+from .._analysis.forecast import Forecast, Loss, forecast, gap_scale
 from .._analysis.laziness import Laziness, laziness, output_gap
 from .._analysis.laziness import relative_change as _relative_change
 from .._analysis.ridge import ridge_fit
 from .._analysis.risk import RiskEstimates, risk
 from .._analysis.spectrum import Spectrum, spectrum
 from .._engine import cost as C
+from .._engine.options import check_choice
 from .._kernel import ntk, ntk_by_layer
 from .._kind import KernelArray, per_output_kernel
 from .._sketch.analysis import (
@@ -91,7 +92,6 @@ RIDGE_DECADES = (-6.0, 2.0)
 #: each batch shape compiles once).
 OUTPUT_BATCH = 1024
 
-Loss = Literal["mse", "cross-entropy"]
 KernelPath = Literal["auto", "exact", "sketch"]
 
 #: ``kernel="auto"`` takes sketched features when the planner's time estimate for the exact
@@ -572,16 +572,14 @@ def analyse_run(
         horizon = _checks.positive_int("horizon", horizon)
     full_kernel_rows = _checks.positive_int("full_kernel_rows", full_kernel_rows)
     ridges = _checks.positive_int("ridges", ridges)
-    if loss not in ("mse", "cross-entropy"):
-        raise ValueError(f"`loss` must be 'mse' or 'cross-entropy', got {loss!r}.")
+    check_choice("loss", loss, get_args(Loss))
     if not isinstance(full_batch_gd, bool):
         raise TypeError(f"`full_batch_gd` must be True or False, got {full_batch_gd!r}.")
     if full_batch_gd and lr is None:
         raise ValueError("`full_batch_gd=True` compares the forecast with the run: pass its `lr`.")
     if (x_test is None) != (y_test is None):
         raise ValueError("`x_test` and `y_test` go together: pass both or neither.")
-    if kernel not in ("auto", "exact", "sketch"):
-        raise ValueError(f"`kernel` must be 'auto', 'exact' or 'sketch', got {kernel!r}.")
+    check_choice("kernel", kernel, get_args(KernelPath))
     features = _checks.positive_int("features", features)
     exact_seconds = _checks.positive("exact_seconds", exact_seconds)
     step_arr, nets = _checkpoints(source, steps, dict(module=module, example=example,
