@@ -19,7 +19,6 @@ BAD = "bogus"
 # Literal options whose check lives in a file another branch owns; they move to `check_choice`
 # there. Remove an entry when its check does, never add one.
 ELSEWHERE = {
-    ("analyse_run", "loss"): "_workflows/study.py",
 }
 
 
@@ -55,6 +54,10 @@ CALLS = {
     ("ntk_operator", "outputs"): lambda bad: ntkcalc.ntk_operator(_net(), X, outputs=bad),
     ("ntk_operator", "method"): lambda bad: ntkcalc.ntk_operator(_net(), X, method=bad),
     ("ntk_operator", "dtype"): lambda bad: ntkcalc.ntk_operator(_net(), X, dtype=bad),
+    ("analyse_run", "loss"): lambda bad: ntkcalc.analyse_run("never-read", X, Y, loss=bad),
+    ("analyse_run", "kernel"): lambda bad: ntkcalc.analyse_run("never-read", X, Y, kernel=bad),
+    ("plan_features", "outputs"): lambda bad: ntkcalc.plan_features(_net(), X, k=4, outputs=bad),
+    ("plan_features", "method"): lambda bad: ntkcalc.plan_features(_net(), X, k=4, method=bad),
     ("run_demo", "scale"): lambda bad: ntkcalc.run_demo("never-written", scale=bad),
 }
 

@@ -202,11 +202,9 @@ def whole_memory(net, x):
     """A budget that fits the projections but only a block of one or two examples."""
     from ntkcalc._sketch import features as F
 
-    req = ntkcalc._engine.planner.prepare(net, x[:2])
-    sketch, acts = F._sketch(req, k=16, outputs="trace", method="structured")
-    per = F._example_bytes(sketch, acts, 8)
-    fixed = sketch.projection_elements() * 8 + x.shape[0] * 16 * 8
-    return int(fixed + 1.5 * per)
+    _, _, req, sketch, acts, _ = F.setup(net, x, k=16, outputs="trace", method="structured")
+    fixed, result, per = F.memory_parts(sketch, acts, req, n=x.shape[0], in_memory=True)
+    return int(fixed + result + 1.5 * per)
 
 
 def test_float32_features_by_default():

@@ -62,10 +62,9 @@ def model():
 def small_memory() -> int:
     """A budget that fits blocks of 3 examples (4 blocks of N = 10)."""
     net, x = model()
-    req = ntkcalc._engine.planner.prepare(net, x[:2])
-    sketch, acts = F._sketch(req, k=K, outputs="trace", method="structured")
-    per = F._example_bytes(sketch, acts, 8)
-    return int(sketch.projection_elements() * 8 + 3.5 * per)
+    _, _, req, sketch, acts, _ = F.setup(net, x, k=K, outputs="trace", method="structured")
+    fixed, _, per = F.memory_parts(sketch, acts, req, n=N, in_memory=False)
+    return int(fixed + 3.5 * per)
 
 
 def run(path, **kw):

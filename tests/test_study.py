@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import functools
 import json
+import re
 
 import flax.linen as nn
 import jax
@@ -38,6 +39,7 @@ from sklearn.datasets import load_digits, load_iris
 from sklearn.kernel_ridge import KernelRidge
 
 import ntkcalc
+from ntkcalc._workflows.report import SKETCH_SECTIONS
 from ntkcalc._workflows.study import CheckpointAnswers, RunAnalysis, analyse_run
 
 N_TRAIN, N_TEST, WIDTH, STEPS, LR = 120, 80, 64, 40, 0.04  # below 2N/λ_max at init
@@ -101,7 +103,8 @@ def _run(tmp: str):
         report = json.load(fh)
     net = ntkcalc.Net.from_linen(model, variables)
     hand = {s: net.replace(params=kept[s]) for s in SAVED}  # built by hand, not from disk
-    data = {"x": x, "y": y, "xt": xt, "yt": np.eye(10)[labels_t], "labels_t": labels_t}
+    data = {"x": x, "y": y, "xt": xt, "yt": np.eye(10)[labels_t], "labels_t": labels_t,
+            "labels": labels}
     return result, report, html_path, hand, kept, data
 
 
@@ -351,3 +354,94 @@ def test_nnx_checkpoints_from_a_factory(tmp_path):
     want = np.linalg.norm(np.asarray(hand[2](x)) - lin(2, x)) / scale
     assert start.gap_steps.tolist() == [0, 2] and start.gap[-1] == pytest.approx(want, rel=1e-8)
     assert result.laziness.forecast_gap == pytest.approx(want, rel=1e-8)
+
+
+# -- the sketched path -----------------------------------------------------------------------------
+SKETCH_K = 1024
+
+
+@functools.cache
+def _sketched(tmp: str):
+    """The same run analysed on sketched features (forced), with its report written."""
+    result, _, _, hand, _, data = _run(tmp)
+    pairs = [(s, hand[s]) for s in SAVED]
+    sk = analyse_run(pairs, data["x"], data["labels"], x_test=data["xt"], y_test=data["labels_t"],
+                     lr=LR, forecast_from=[0, 20], kernel="sketch", features=SKETCH_K)
+    html_path, _ = sk.write(f"{tmp}/sketch-report")
+    return result, sk, html_path
+
+
+@pytest.fixture(scope="module")
+def sketched(tmp_path_factory, run):
+    return _sketched(str(tmp_path_factory.mktemp("sketch")))
+
+
+def _within(u, want, sigmas=4.0):
+    """An estimate within ``sigmas`` jackknife standard errors (plus its estimated bias) of the
+    reference; 4σ: a correct error bar fails about once in 16,000 checks (common practice)."""
+    value, err, bias = (np.asarray(v, float) for v in (u.value, u.error, u.bias))
+    assert np.all(np.abs(value - want) <= sigmas * err + np.abs(bias)), (value, err, want)
+
+
+def test_sketched_run_matches_exact_within_error_bars(sketched):
+    """Forced sketch vs the exact path on the same digits run (k = 1024 features, N = 120):
+    distance to step 0 and centered alignment against the exact path's drift (whose formulas
+    are checked above against numpy); top eigenvalues against numpy's eigh of `ntkcalc.ntk`
+    (checked against jacrev elsewhere); the test MSE of kernel ridge at the ridge GCV chose,
+    against scikit-learn's KernelRidge on the exact kernels. Each within 4 error bars."""
+    exact, sk, _ = sketched
+    assert sk.kernel == "sketch" and exact.kernel == "exact"
+    assert sk.kinds["kernel"] == "sketch: kernel='sketch'"
+    assert exact.kinds["kernel"].startswith("exact: the exact kernels fit")
+    s = sk.sketched
+    assert s.distance[0] is None
+    _within(s.distance[-1], exact.drift.distance_to_initial[-1])
+    for t in range(len(SAVED)):
+        _within(s.alignment[t], exact.drift.alignment[t])
+    for c, step in zip(s.checkpoints, (0, 20), strict=True):
+        assert c.step == step and c.ridge in c.ridges and c.gcv[list(c.ridges).index(c.ridge)] \
+            == min(c.gcv)
+
+
+def test_sketched_eigenvalues_and_ridge_against_numpy_and_sklearn(sketched, run):
+    _, sk, _ = sketched
+    _, _, _, hand, _, data = run
+    for c in sk.sketched.checkpoints:
+        k = np.asarray(ntkcalc.ntk(hand[c.step], data["x"], progress=False))
+        kx = np.asarray(ntkcalc.ntk(hand[c.step], data["xt"], data["x"], progress=False))
+        top = np.linalg.eigvalsh(k)[::-1][:c.eigenvalues.value.size]
+        _within(c.eigenvalues, top)
+        ref = KernelRidge(alpha=c.ridge, kernel="precomputed").fit(k, data["y"])
+        mse = float(np.mean((ref.predict(kx) - data["yt"]) ** 2))
+        _within(c.fit.test_mse, mse)
+
+
+def test_sketched_run_refuses_exact_only_answers_and_reports_the_kernel(sketched):
+    """No silent substitutes: forecasts and per-group kernels are named as not computed, the
+    report's sections are the sketched ones, and result.json says which kernel was used."""
+    _, sk, html_path = sketched
+    assert sk.drift is None and sk.checkpoints == () and sk.groups == ()
+    assert any(c.startswith("Forecasts not computed") for c in sk.cautions)
+    assert any(c.startswith("Per-group kernel change not computed") for c in sk.cautions)
+    assert sk.kinds["forecast"].startswith("not computed")
+    with open(html_path, encoding="utf-8") as fh:
+        page = fh.read()
+    assert tuple(re.findall(r'<section id="([^"]+)">', page)) == SKETCH_SECTIONS
+    assert "sketched NTK features, k = 1024" in page
+    doc = json.loads(sk.to_json())
+    assert doc["kernel"] == "sketch" and doc["drift"] is None
+    assert doc["sketched"]["k"] == SKETCH_K
+    assert len(doc["sketched"]["alignment"]) == len(SAVED)
+    assert all(r is not None for r in sk.feature_ranks)  # no kernel needed
+    sk.plot()  # a figure of the sketched answers with error bars
+
+
+def test_auto_takes_features_above_the_time_limit(run):
+    """kernel="auto": with a time limit below the planner's estimate the sketch is taken and
+    the reason names the estimate; with the default limit this small run stays exact."""
+    _, _, _, hand, _, data = run
+    pairs = [(0, hand[0]), (40, hand[40])]
+    sk = analyse_run(pairs, data["x"], data["labels"], features=64, exact_seconds=1e-9)
+    assert sk.kernel == "sketch" and "above exact_seconds=1e-09" in sk.kinds["kernel"]
+    with pytest.raises(ValueError, match="`kernel` must be"):
+        analyse_run(pairs, data["x"], data["labels"], kernel="approximate")

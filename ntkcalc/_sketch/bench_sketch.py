@@ -166,7 +166,8 @@ def _scale(spec: dict) -> list[dict]:
         cpu0 = _cpu_seconds()
         t0 = time.perf_counter()
         f = ntkcalc.ntk_features(net, x, k=k, store=os.path.join(tmp, "f.zarr"),
-                                 memory=spec.get("memory", "4GB"), progress=False)
+                                 memory=spec.get("memory", "4GB"),
+                                 progress=bool(spec.get("progress", False)))
         wall = time.perf_counter() - t0
         cpu = _cpu_seconds() - cpu0
         rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6

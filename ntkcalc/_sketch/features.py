@@ -127,13 +127,13 @@ def _read(x, r0: int, r1: int, block: int, dtype) -> np.ndarray:
     return xb
 
 
-def _sketch(req, *, k: int, outputs: str, method: str) -> tuple[Sketch, float]:
-    """(the feature computation, activation elements per example)."""
+def _sketch(req, *, k: int, outputs: str, method: str) -> tuple[Sketch, float, float]:
+    """(the feature computation, activation elements and forward FLOPs per example)."""
     sel = req.selection
     prog_outputs = "logit-sum" if outputs == "logit-sum" else "full"
     base = Program(req.net.call, jax.tree_util.tree_structure(req.params), sel, prog_outputs,
                    req.num_outputs, "jacobian", ("dense",) * len(req.diff))
-    _, acts, an = traced(req, base)
+    fwd, acts, an = traced(req, base)
     kinds = []
     folds: list[int | None] = [None] * len(req.diff)
     for leaf in range(len(req.diff)):
@@ -157,10 +157,10 @@ def _sketch(req, *, k: int, outputs: str, method: str) -> tuple[Sketch, float]:
                                folds=tuple(folds))
     sketch = Sketch(prog, k, outputs != "full", method, tuple(sel.indices),
                     tuple(tuple(np.shape(d)) for d in req.diff))
-    return sketch, acts
+    return sketch, acts, fwd
 
 
-def _example_bytes(sketch: Sketch, acts: float, isz: int) -> float:
+def example_bytes(sketch: Sketch, acts: float, isz: int) -> float:
     """Estimated working bytes per example of a block (activations, factors, projections)."""
     a, k = sketch.directions, sketch.k
     rows = sketch.rows_per_example
@@ -181,15 +181,29 @@ def _example_bytes(sketch: Sketch, acts: float, isz: int) -> float:
     return total
 
 
-def _block(sketch, acts, req, *, n: int, budget: int, in_memory: bool, memory) -> int:
+def memory_parts(sketch: Sketch, acts: float, req, *, n: int,
+                 in_memory: bool) -> tuple[float, float, float]:
+    """(fixed bytes: projections and JVP tangents, bytes of the features if held in memory,
+    working bytes per example of a block)."""
     isz = C.itemsize(req.dtype)
     fixed = sketch.projection_elements() * isz
     if sketch.method == "jvp":
         fixed += 2 * sketch.jvp_chunk * sum(int(np.size(d)) for d in req.diff) * isz
     result = n * sketch.rows_per_example * sketch.k * isz if in_memory else 0
-    per = _example_bytes(sketch, acts, isz)
+    return fixed, result, example_bytes(sketch, acts, isz)
+
+
+def fit_block(fixed: float, result: float, per: float, *, n: int, budget: int) -> int:
+    """Examples per compiled step for ``budget`` bytes (0: not even one fits), at most
+    `MAX_BLOCK`, spread evenly over the blocks."""
     free = budget - fixed - result
-    block = int(free // per) if free > 0 else 0
+    block = min(int(free // per), n, MAX_BLOCK) if free >= per else 0
+    return math.ceil(n / math.ceil(n / block)) if block else 0
+
+
+def _block(sketch, acts, req, *, n: int, budget: int, in_memory: bool, memory) -> int:
+    fixed, result, per = memory_parts(sketch, acts, req, n=n, in_memory=in_memory)
+    block = fit_block(fixed, result, per, n=n, budget=budget)
     if block < 1:
         raise MemoryError(
             f"`memory`={memory!r} ({C.format_bytes(budget)}) is too small: the projections take "
@@ -198,9 +212,21 @@ def _block(sketch, acts, req, *, n: int, budget: int, in_memory: bool, memory) -
             + f" and one example about {C.format_bytes(per)}. Raise `memory`, lower `k`"
             + (", or pass `store=` to write the features to disk." if in_memory else ".")
         )
-    block = min(block, n, MAX_BLOCK)
-    nb = math.ceil(n / block)
-    return math.ceil(n / nb)
+    return block
+
+
+def setup(net, x, *, k, outputs: str, method: str, seed=0, params=None):
+    """Validate a features request up front: (x, k, request, sketch, activation elements and
+    forward FLOPs per example). Only two examples of ``x`` are read."""
+    x = _check_stream(x)
+    k = _check_positive("k", k)
+    check_choice("outputs", outputs, FEATURE_OUTPUTS)
+    check_choice("method", method, FEATURE_METHODS)
+    if not isinstance(seed, int | np.integer) or isinstance(seed, bool) or seed < 0:
+        raise ValueError(f"`seed`={seed!r} must be a non-negative integer.")
+    req = prepare(net, np.asarray(x[:2]), outputs=outputs, params=params)
+    sketch, acts, fwd = _sketch(req, k=k, outputs=outputs, method=method)
+    return x, k, req, sketch, acts, fwd
 
 
 def ntk_features(
@@ -230,8 +256,9 @@ def ntk_features(
         x: inputs (N, ...): a numpy array, a memmap (``np.load(path, mmap_mode="r")``) or a zarr
             array; read one block at a time.
         k: features per row. Relative error of one kernel entry ≈ √(c/k) with c between 2 (plain
-            Gaussian projection) and 8 (product projection, rank-one derivative): k = 2000-4000
-            for a few percent (docs/sketch.md has the guidance and measurements).
+            Gaussian projection) and 8 (product projection, rank-one derivative); k = 2048 is
+            the measured recommendation (docs/sketch.md: guidance, limits, measurements;
+            `ntkcalc.plan_features` prices a k).
         outputs: ``"trace"`` (Σ_a Θ_aa: φ (N, k)), ``"logit-sum"`` (Θ of Σ_a f_a: φ (N, k)) or
             ``"full"`` (φ (N·O, k), row i·O + a: ``φ_(i,a) · φ_(j,b)`` estimates Θ_ab(x_i, x_j);
             its diagonal-in-outputs part gives the ``"diagonal"`` kernel).
@@ -253,21 +280,15 @@ def ntk_features(
     Returns:
         `Features`. float32, or float64 when JAX x64 is enabled; matmuls at precision "highest".
     """
-    x = _check_stream(x)
-    k = _check_positive("k", k)
-    check_choice("outputs", outputs, FEATURE_OUTPUTS)
-    check_choice("method", method, FEATURE_METHODS)
-    if not isinstance(seed, int | np.integer) or isinstance(seed, bool) or seed < 0:
-        raise ValueError(f"`seed`={seed!r} must be a non-negative integer.")
     if not isinstance(progress, bool):
         raise ValueError(f"`progress`={progress!r} must be True or False.")
+    x, k, req, sketch, acts, _ = setup(net, x, k=k, outputs=outputs, method=method,
+                                       seed=seed, params=params)
     store = check_store(store)
     index, count = process()
     if store is None and count > 1:
         raise ValueError(f"`store`=None with {count} JAX processes: pass store='features.zarr' "
                          "on a filesystem every process can reach.")
-    req = prepare(net, np.asarray(x[:2]), outputs=outputs, params=params)
-    sketch, acts = _sketch(req, k=k, outputs=outputs, method=method)
     n = int(x.shape[0])
     budget = C.parse_memory(memory)
     block = _block(sketch, acts, req, n=n, budget=budget, in_memory=store is None,

@@ -41,6 +41,8 @@ from .study import RunAnalysis, _plain
 
 SECTIONS = ("summary", "cautions", "spectrum", "heatmap", "drift", "groups", "forecast", "risk",
             "feature-rank", "setup")
+#: The sections of a run analysed on sketched features (`analyse_run(kernel="sketch")`).
+SKETCH_SECTIONS = ("summary", "cautions", "sketch", "feature-rank", "setup")
 
 #: The complete result `RunAnalysis.write` puts beside the report.
 RESULT = "result.json"
@@ -450,16 +452,93 @@ def _analysis_summary(a, desc, spec, fc, rk, ranks, cautions) -> list[str]:
     ]
 
 
-def _analysis_sections(a, desc: RunDescription) -> list[_Section]:
+def _rank_section(a) -> tuple[dict, _Section]:
+    """(numbers per checkpoint, the section) of the interpolation check."""
     from .study import _rank_numbers  # the one list of a FeatureRank's numbers
 
+    ranks = {f"step {s}": _plain(_rank_numbers(r))
+             for s, r in zip(a.steps.tolist(), a.feature_ranks, strict=True) if r is not None}
+    return ranks, _Section(
+        "feature-rank", "Feature rank: the interpolation check",
+        "Numerical rank of [H, 1], the features of a layer over the training set plus a bias "
+        "column: full rank (= N) means a linear readout can fit any targets. The margin is "
+        "the N-th singular value over the rank tolerance; near 1 the verdict hangs on the "
+        "tolerance.", {"checkpoints": ranks},
+        rows=tuple(
+            (f"{name}: rank / N / columns", f"{r['rank']} / {r['num_examples']} / "
+             f"{r['num_features']}  (full rank: {_fmt(r['full_rank'])}, margin "
+             f"{_fmt(r['margin'])}, σ_N {_fmt(r['sigma_min'])}, tolerance {_fmt(r['tol'])})")
+            for name, r in ranks.items()) or (("not computed", "see the cautions"),),
+    )
+
+
+def _pm(u, i=None) -> str:
+    """``value ± error`` of an `Uncertain` (entry i of an array estimate)."""
+    v, e = (u.value, u.error) if i is None else (u.value[i], u.error[i])
+    return f"{float(v):.4g} ± {float(e):.2g}"
+
+
+def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
+    """The report of a run analysed on sketched features: which kernel and why first, every
+    number with its error bar, the answers not computed named."""
+    sk = a.sketched
+    names = _class_names(a, desc)
+    cautions = list(a.cautions)
+    if not a.lazy:
+        cautions.append(f"Not lazy — the verdict: {a.verdict}.")
+    last = sk.checkpoints[-1]
+    fit = last.fit
+    steps = a.steps.tolist()
+    test = ("" if fit.test_mse is None else
+            f"; on held-out data {_pm(fit.test_mse)}")
+    summary = [
+        f"Data and run: {a.num_train} train / {a.num_test} test {desc.data}, {a.num_outputs} "
+        f"outputs; {desc.model} ({a.num_params:,} parameters, {a.dtype}); checkpoints at steps "
+        f"{', '.join(map(str, steps))}.",
+        f"Kernel: sketched NTK features, k = {sk.k} per example (not the exact kernel): "
+        f"{sk.reason}. Numbers are estimates ± one jackknife standard error.",
+        f"Laziness verdict (on the sketched kernel distance): {a.verdict}.",
+        f"Label alignment {_pm(sk.alignment[0])} → {_pm(sk.alignment[-1])}; kernel distance "
+        f"to step {steps[0]} at step {steps[-1]}: {_pm(sk.distance[-1])}.",
+        f"Kernel ridge at step {last.step}, ridge {last.ridge:.3g} chosen by GCV: GCV "
+        f"{_pm(fit.gcv)}{test} ({plots.MSE_LABEL}).",
+        f"Not computed: {len(sk.refused)} answers that need the exact kernel (see the "
+        f"cautions); cautions: {len(cautions)}.",
+    ]
+    rows = [("kernel", f"sketched features, k = {sk.k}, seed {sk.seed}"), ("why", sk.reason)]
+    for s, d, al in zip(steps, sk.distance, sk.alignment, strict=True):
+        rows.append((f"step {s}: distance to step {steps[0]} / alignment",
+                     f"{'—' if d is None else _pm(d)} / {_pm(al)}"))
+    for c in sk.checkpoints:
+        top = ", ".join(f"{float(v):.4g}" for v in np.asarray(c.eigenvalues.corrected)[:5])
+        rows.append((f"step {c.step}: top eigenvalues (bias-corrected)", top))
+        rows.append((f"step {c.step}: kernel ridge at {c.ridge:.3g}",
+                     f"train {_pm(c.fit.train_mse)}, GCV {_pm(c.fit.gcv)}"
+                     + ("" if c.fit.test_mse is None else f", test {_pm(c.fit.test_mse)}")))
+    ranks, rank_section = _rank_section(a)
+    return [
+        _Section("summary", "Summary", "", {"lines": summary, "verdict": a.laziness.to_dict()},
+                 items=tuple(summary)),
+        _Section("cautions", "Cautions", "Where the numbers below can mislead.",
+                 {"items": cautions}, items=tuple(cautions)),
+        _Section("sketch", "Answers from sketched features",
+                 "Each kernel is estimated by φ φᵀ with φ the sketched NTK features "
+                 "(ntk_features); the same seed at every checkpoint, so distances measure the "
+                 "kernels' change, not the sketches'.", sk.to_dict(), rows=tuple(rows)),
+        rank_section,
+        _setup_section(a, desc, names),
+    ]
+
+
+def _analysis_sections(a, desc: RunDescription) -> list[_Section]:
+    if a.sketched is not None:
+        return _sketched_sections(a, desc)
     names = _class_names(a, desc)
     first, last = a.checkpoints[0], a.checkpoints[-1]
     spec = first.spectrum
     cautions = _analysis_cautions(a, spec)
     fc, rk = _forecast_numbers(a), _risk_numbers(first)
-    ranks = {f"step {s}": _plain(_rank_numbers(r))
-             for s, r in zip(a.steps.tolist(), a.feature_ranks, strict=True) if r is not None}
+    ranks, rank_section = _rank_section(a)
     summary = _analysis_summary(a, desc, spec, fc, rk, ranks, cautions)
     d = a.drift
     spread = d.laziness.spread
@@ -484,18 +563,7 @@ def _analysis_sections(a, desc: RunDescription) -> list[_Section]:
         _groups_section(a),
         _forecast_section(a, fc),
         _risk_section(rk, last),
-        _Section(
-            "feature-rank", "Feature rank: the interpolation check",
-            "Numerical rank of [H, 1], the features of a layer over the training set plus a bias "
-            "column: full rank (= N) means a linear readout can fit any targets. The margin is "
-            "the N-th singular value over the rank tolerance; near 1 the verdict hangs on the "
-            "tolerance.", {"checkpoints": ranks},
-            rows=tuple(
-                (f"{name}: rank / N / columns", f"{r['rank']} / {r['num_examples']} / "
-                 f"{r['num_features']}  (full rank: {_fmt(r['full_rank'])}, margin "
-                 f"{_fmt(r['margin'])}, σ_N {_fmt(r['sigma_min'])}, tolerance {_fmt(r['tol'])})")
-                for name, r in ranks.items()) or (("not computed", "see the cautions"),),
-        ),
+        rank_section,
         _setup_section(a, desc, names),
     ]
 

@@ -24,6 +24,15 @@ needs, so nobody wires modes by hand:
   (`RiskEstimates.recommended`: GCV's when GCV and LOO agree, else LOO's) when a test set is
   given.
 
+Past the exact kernel's reach (``kernel="auto"``: the (T, N, N) kernels do not fit the memory
+budget, or the planner's time estimate for them exceeds `EXACT_SECONDS`; or ``kernel="sketch"``)
+the answers come from sketched NTK features (`ntk_features`, trace, one seed for every
+checkpoint), each with its jackknife error bar (`SketchedAnswers`): drift as the kernel distance
+to the first checkpoint (`features_distance`), alignment (`features_alignment`), top eigenvalues
+(`features_spectrum`), kernel ridge with GCV and its test error (`features_ridge`). Answers that
+need the exact kernel — forecasts, the per-group kernels — are not computed then, and the
+result's cautions say so; ``kinds`` and ``kernel`` say which path was taken and why.
+
 Errors are in one convention: MSE, the mean over examples and outputs of ``(f − y)²``.
 """
 
@@ -35,7 +44,7 @@ import json
 import os
 import warnings
 from collections.abc import Sequence
-from typing import Literal
+from typing import Literal, get_args
 
 import jax
 import numpy as np
@@ -46,14 +55,25 @@ from .._analysis._batches import batch_slices, pad_rows
 from .._analysis._result import Result, save_record
 from .._analysis.alignment import alignment
 from .._analysis.expressivity import FeatureRank, feature_rank
-from .._analysis.forecast import Forecast, forecast, gap_scale
+from .._analysis.forecast import Forecast, Loss, forecast, gap_scale
 from .._analysis.laziness import Laziness, laziness, output_gap
 from .._analysis.laziness import relative_change as _relative_change
 from .._analysis.ridge import ridge_fit
 from .._analysis.risk import RiskEstimates, risk
 from .._analysis.spectrum import Spectrum, spectrum
+from .._engine import cost as C
+from .._engine.options import check_choice
 from .._kernel import ntk, ntk_by_layer
 from .._kind import KernelArray, per_output_kernel
+from .._sketch.analysis import (
+    Uncertain,
+    features_alignment,
+    features_distance,
+    features_ridge,
+    features_spectrum,
+)
+from .._sketch.features import ntk_features
+from .._sketch.plan import plan_features
 from . import plots
 from .drift import DEFAULT_THRESHOLD, MOVED_NOTE, Drift, _from_directory, drift
 
@@ -72,7 +92,26 @@ RIDGE_DECADES = (-6.0, 2.0)
 #: each batch shape compiles once).
 OUTPUT_BATCH = 1024
 
-Loss = Literal["mse", "cross-entropy"]
+KernelPath = Literal["auto", "exact", "sketch"]
+
+#: ``kernel="auto"`` takes sketched features when the planner's time estimate for the exact
+#: kernels the workflow computes (T checkpoints, two per-group passes, the forecasts) exceeds
+#: this many seconds (our choice: half an hour, the scale of one N = 50,000 kernel here).
+EXACT_SECONDS = 1800.0
+#: Features per example of the sketched path (docs/sketch.md: relative error of a top
+#: eigenvalue ≈ √(c/k), c ≈ 2-8, measured there).
+FEATURES_K = 2048
+#: Top eigenvalues reported by the sketched path.
+SKETCH_TOP = 10
+#: Ridge grid of the sketched path: from ``tr K̂ / N · 10^p₀`` to ``tr K̂ / N · 10^p₁`` (our
+#: choice), never below ``tr K̂ / k`` when N > k: below that the sketch's bias dominates
+#: (docs/sketch.md).
+SKETCH_RIDGE_DECADES = (-2.0, 1.0)
+
+SKETCH_REFUSED = (
+    "{what} not computed: {why} It needs the exact kernel, which was not computed ({reason}); "
+    "rerun with kernel='exact' on a subset of the examples (x_train[:n]) for it."
+)
 
 PER_OUTPUT_NOTE = (
     "The forecast from step {step} uses the per-output kernel trace / {o} (assuming Θ = K ⊗ I_{o}, "
@@ -196,6 +235,72 @@ class CheckpointAnswers(Result):
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
+class SketchedCheckpoint(Result):
+    """The answers from sketched features at one checkpoint of ``forecast_from``.
+
+    Fields:
+        step: the training step.
+        eigenvalues: `Uncertain` top eigenvalues of the train trace kernel (descending; a sketch
+            pushes them up by about tr K / k: read ``.corrected``, `features_spectrum`).
+        ridges: (R,) the ridge grid (`SKETCH_RIDGE_DECADES` times ``tr K̂ / N``).
+        gcv: (R,) GCV estimates of kernel ridge at each ridge (their values).
+        ridge: the ridge with the smallest GCV.
+        fit: `FeatureRidge` at ``ridge`` (train MSE, GCV, LOO, test MSE with error bars).
+    """
+
+    step: int
+    eigenvalues: Uncertain
+    ridges: np.ndarray
+    gcv: np.ndarray
+    ridge: float
+    fit: object
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
+class SketchedAnswers(Result):
+    """What `analyse_run` answered from sketched NTK features instead of exact kernels.
+
+    Fields:
+        k, seed: features per example and the projections' seed, shared by every checkpoint
+            (so the distance between checkpoints is the kernels', not two sketches').
+        reason: why features were used.
+        distance: (T,) `Uncertain` kernel distance ``1 − cos(K_t, K_0)`` to the first checkpoint
+            (`features_distance`; None at the first).
+        alignment: (T,) `Uncertain` centered kernel-target alignment per checkpoint.
+        checkpoints: `SketchedCheckpoint` at each step of ``forecast_from``.
+        refused: the answers that need the exact kernel, each with the reason (also cautions).
+    """
+
+    k: int
+    seed: int
+    reason: str
+    distance: tuple
+    alignment: tuple
+    checkpoints: tuple[SketchedCheckpoint, ...]
+    refused: tuple[str, ...]
+
+    def to_dict(self) -> dict:
+        """Every number as plain values: each estimate as value, error, bias."""
+        return _plain({
+            "k": self.k, "seed": self.seed, "reason": self.reason,
+            "distance": [None if d is None else _uncertain(d) for d in self.distance],
+            "alignment": [_uncertain(a) for a in self.alignment],
+            "checkpoints": [{
+                "step": c.step, "eigenvalues": _uncertain(c.eigenvalues),
+                "ridges": c.ridges, "gcv": c.gcv, "ridge": c.ridge,
+                "train_mse": _uncertain(c.fit.train_mse), "gcv_at_ridge": _uncertain(c.fit.gcv),
+                "loo_at_ridge": c.fit.loo,
+                "test_mse": None if c.fit.test_mse is None else _uncertain(c.fit.test_mse),
+            } for c in self.checkpoints],
+            "refused": list(self.refused),
+        })
+
+
+def _uncertain(u: Uncertain) -> dict:
+    return {"value": u.value, "error": u.error, "bias": u.bias, "groups": u.groups}
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
 class RunAnalysis(Result):
     """Everything `analyse_run` found about one training run.
 
@@ -207,8 +312,10 @@ class RunAnalysis(Result):
         parameter_change: ``‖θ_T − θ_0‖ / ‖θ_0‖`` between the first and last checkpoint.
         labels: (N,) the training set's integer classes for classification targets, else None.
         dtype: the dtype of every kernel.
-        kinds: answer → the kernel it came from (e.g. ``"drift": "trace (N, N)"``).
-        drift: `Drift` over the checkpoints (trace kernels on the training set).
+        kinds: answer → the kernel it came from (e.g. ``"drift": "trace (N, N)"``), and
+            ``"kernel"``: which path and why.
+        drift: `Drift` over the checkpoints (trace kernels on the training set); None when the
+            answers came from sketched features (``sketched``).
         laziness: the one laziness verdict (`ntkcalc.laziness`): the kernel criteria of
             ``drift`` and, with ``full_batch_gd``, the forecast gap of the first checkpoint.
         lazy: ``laziness.lazy``; verdict: ``laziness.sentence``.
@@ -218,6 +325,10 @@ class RunAnalysis(Result):
         checkpoints: `CheckpointAnswers` at each step of ``forecast_from``.
         cautions: where a number may mislead (non-lazy run, per-output approximation,
             conditioning, precision, estimator disagreement), one sentence each.
+        kernel: ``"exact"`` (kernels by `ntk`) or ``"sketch"`` (features by `ntk_features`:
+            ``drift`` is None, ``groups`` and ``checkpoints`` are empty, the answers are in
+            ``sketched``, the laziness verdict rests on the sketched kernel distance).
+        sketched: `SketchedAnswers`, or None on the exact path.
     """
 
     steps: np.ndarray
@@ -229,7 +340,7 @@ class RunAnalysis(Result):
     labels: np.ndarray | None
     dtype: str
     kinds: dict
-    drift: Drift
+    drift: Drift | None
     laziness: Laziness
     lazy: bool
     verdict: str
@@ -237,17 +348,22 @@ class RunAnalysis(Result):
     feature_ranks: tuple[FeatureRank | None, ...]
     checkpoints: tuple[CheckpointAnswers, ...]
     cautions: tuple[str, ...]
+    kernel: str = "exact"
+    sketched: SketchedAnswers | None = None
 
     def to_dict(self) -> dict:
         """Every number as plain Python values (NaN and inf → None); what `to_json` writes."""
         d = self.drift
         return _plain({
+            "kernel": self.kernel,
+            "sketched": None if self.sketched is None else self.sketched.to_dict(),
             "steps": self.steps, "num_train": self.num_train, "num_test": self.num_test,
             "num_outputs": self.num_outputs, "num_params": self.num_params,
             "parameter_change": self.parameter_change, "labels": self.labels, "dtype": self.dtype,
             "kinds": self.kinds,
             "lazy": self.lazy, "verdict": self.verdict, "laziness": self.laziness.to_dict(),
-            "drift": {"table": d.to_dict(), "threshold": d.threshold, "notes": list(d.notes)},
+            "drift": None if d is None else {"table": d.to_dict(), "threshold": d.threshold,
+                                             "notes": list(d.notes)},
             "groups": [dataclasses.asdict(g) for g in self.groups],
             "feature_rank": [None if r is None else _rank_numbers(r) for r in self.feature_ranks],
             "checkpoints": [_answers_numbers(a) for a in self.checkpoints],
@@ -263,6 +379,8 @@ class RunAnalysis(Result):
         checkpoint, and the spectra; returns a matplotlib Figure (no pyplot, any backend)."""
         from matplotlib.figure import Figure
 
+        if self.sketched is not None:
+            return self._plot_sketched(Figure(figsize=(12.0, 3.8), layout="constrained"))
         fig = Figure(figsize=(10.0, 7.0), layout="constrained")
         change, align, fc, spec = fig.subplots(2, 2).ravel()
         d = self.drift
@@ -295,6 +413,32 @@ class RunAnalysis(Result):
             w = w[w > 0]
             spec.loglog(np.arange(1, w.size + 1), w, ".", markersize=3, label=f"step {a.step}")
         spec.set(xlabel="rank i", ylabel="eigenvalue λ_i", title="Trace kernel spectrum")
+        spec.legend(fontsize="small", frameon=False)
+        return fig
+
+    def _plot_sketched(self, fig):
+        """The sketched answers with their error bars (± one jackknife standard error)."""
+        sk = self.sketched
+        change, align, spec = fig.subplots(1, 3)
+        later = [(s, d) for s, d in zip(self.steps, sk.distance, strict=True) if d is not None]
+        change.errorbar([s for s, _ in later], [d.value for _, d in later],
+                        yerr=[d.error for _, d in later], fmt="s--", color=plots.ESTIMATE,
+                        label="distance 1 − cos(K_t, K_0)")
+        change.axhline(self.laziness.kernel_threshold, color=plots.REFERENCE, ls=":",
+                       label=f"threshold {self.laziness.kernel_threshold:.0%}")
+        change.set(xlabel="training step", ylabel="kernel change (sketched)",
+                   title="lazy" if self.lazy else "not lazy")
+        change.legend(fontsize="small", frameon=False)
+        align.errorbar(self.steps, [a.value for a in sk.alignment],
+                       yerr=[a.error for a in sk.alignment], fmt="o-", color=plots.THIRD)
+        align.set(xlabel="training step", ylabel="centered alignment A(K_t, YYᵀ)",
+                  title="Kernel-label alignment (sketched)")
+        for c in sk.checkpoints:
+            w = np.asarray(c.eigenvalues.corrected)
+            spec.errorbar(np.arange(1, w.size + 1), w, yerr=c.eigenvalues.error, fmt=".",
+                          label=f"step {c.step}")
+        spec.set(xscale="log", yscale="log", xlabel="rank i", ylabel="eigenvalue λ_i",
+                 title=f"Top of the trace kernel spectrum (k = {sk.k})")
         spec.legend(fontsize="small", frameon=False)
         return fig
 
@@ -359,6 +503,10 @@ def analyse_run(
     threshold: float = DEFAULT_THRESHOLD,
     ridges: int = 25,
     full_kernel_rows: int = FULL_KERNEL_ROWS,
+    kernel: KernelPath = "auto",
+    features: int = FEATURES_K,
+    memory=None,
+    exact_seconds: float = EXACT_SECONDS,
     progress: bool = False,
 ) -> RunAnalysis:
     """From a training run's checkpoints to drift, laziness, forecasts, test error, interpolation
@@ -402,6 +550,16 @@ def analyse_run(
         ridges: number of ridges in the risk grid (log-spaced over `RIDGE_DECADES` times the
             kernel's mean diagonal).
         full_kernel_rows: the largest N·O for which forecasts use the exact full kernel.
+        kernel: ``"exact"`` (kernels by `ntk`), ``"sketch"`` (sketched features, every answer
+            with an error bar; forecasts and per-group kernels are not computed, and the cautions
+            say so) or ``"auto"``: the sketch when the T exact (N, N) trace kernels do not fit
+            ``memory``, or when the planner estimates the exact kernels at more than
+            ``exact_seconds``. ``result.kernel`` and ``result.kinds["kernel"]`` say which was
+            used and why.
+        features: features per example on the sketched path (`ntk_features`' k).
+        memory: the memory budget (bytes or e.g. ``"8GB"``; default half the memory available
+            now) of the choice and of the features.
+        exact_seconds: the time limit of ``kernel="auto"`` for the exact path.
         progress: progress bars of the kernel computations.
 
     Returns:
@@ -414,14 +572,16 @@ def analyse_run(
         horizon = _checks.positive_int("horizon", horizon)
     full_kernel_rows = _checks.positive_int("full_kernel_rows", full_kernel_rows)
     ridges = _checks.positive_int("ridges", ridges)
-    if loss not in ("mse", "cross-entropy"):
-        raise ValueError(f"`loss` must be 'mse' or 'cross-entropy', got {loss!r}.")
+    check_choice("loss", loss, get_args(Loss))
     if not isinstance(full_batch_gd, bool):
         raise TypeError(f"`full_batch_gd` must be True or False, got {full_batch_gd!r}.")
     if full_batch_gd and lr is None:
         raise ValueError("`full_batch_gd=True` compares the forecast with the run: pass its `lr`.")
     if (x_test is None) != (y_test is None):
         raise ValueError("`x_test` and `y_test` go together: pass both or neither.")
+    check_choice("kernel", kernel, get_args(KernelPath))
+    features = _checks.positive_int("features", features)
+    exact_seconds = _checks.positive("exact_seconds", exact_seconds)
     step_arr, nets = _checkpoints(source, steps, dict(module=module, example=example,
                                                       variables=variables, item=item,
                                                       subtree=subtree), x)
@@ -454,6 +614,12 @@ def analyse_run(
         record = (step_arr, np.stack(outputs), None)
     options = {"progress": progress}
     cautions = _Cautions()
+    path, reason = _kernel_path(kernel, nets, x, xt, k=features, memory=memory,
+                                limit=exact_seconds, answers=len(chosen), lr=lr, o=o)
+    if path == "sketch":
+        return _sketched_run(nets, step_arr, x, y, xt, yt, chosen, labels=labels, k=features,
+                             memory=memory, reason=reason, lr=lr, inits=inits, layer=layer,
+                             threshold=threshold, progress=progress, cautions=cautions)
     with cautions.watch():
         dr = drift(nets, x, y, steps=step_arr.tolist(), inits=inits, threshold=threshold,
                    **options)
@@ -491,18 +657,15 @@ def analyse_run(
     if lr is not None and not full_batch_gd:
         notes.append(NOT_GD_NOTE.format(lr=lr))
     kinds = {
+        "kernel": f"exact: {reason}",
         "drift, alignment, spectrum, risk, groups": f"trace (N, N) = ({n}, {n})",
         "test error of kernel ridge": "trace, test × train" if xt is not None else "none",
         "forecast": ", ".join(sorted({a.kernel for a in answers})) if lr is not None else "none",
-        "feature rank": "features of the readout's input (no kernel)" if layer is None
-        else f"features of {layer!r} (no kernel)",
+        "feature rank": _rank_kind(layer),
         "dtype": dtype,
     }
     return RunAnalysis(
-        steps=step_arr, num_train=n, num_test=0 if xt is None else int(xt.shape[0]),
-        num_outputs=o, num_params=nets[0].num_params,
-        parameter_change=_parameter_change(nets[0], nets[-1]), labels=labels, dtype=dtype,
-        kinds=kinds, drift=dr,
+        **_common_fields(nets, step_arr, n, xt, o, labels, dtype), kinds=kinds, drift=dr,
         laziness=verdict, lazy=verdict.lazy,
         verdict=verdict.sentence, groups=groups, feature_ranks=ranks, checkpoints=tuple(answers),
         cautions=tuple(dict.fromkeys(notes + cautions.items)),
@@ -510,6 +673,117 @@ def analyse_run(
 
 
 # -- pieces ---------------------------------------------------------------------------------------
+def _common_fields(nets, step_arr, n: int, xt, o: int, labels, dtype: str) -> dict:
+    """The fields of a `RunAnalysis` that both paths fill alike."""
+    return dict(steps=step_arr, num_train=n, num_test=0 if xt is None else int(xt.shape[0]),
+                num_outputs=o, num_params=nets[0].num_params,
+                parameter_change=_parameter_change(nets[0], nets[-1]), labels=labels,
+                dtype=dtype)
+
+
+def _rank_kind(layer) -> str:
+    return ("features of the readout's input (no kernel)" if layer is None
+            else f"features of {layer!r} (no kernel)")
+
+
+def _kernel_path(kernel: str, nets, x, xt, *, k: int, memory, limit: float, answers: int,
+                 lr, o: int) -> tuple[str, str]:
+    """("exact" or "sketch", why). The exact path holds T trace kernels (N, N) at once and
+    computes about T + 2 + (answers · (1 + O) with forecasts) kernels of that size (drift, the
+    per-group kernels at the first and last checkpoint, each chosen checkpoint's full kernel)
+    plus the test-train ones: priced by the planner (`plan_features` plans both)."""
+    if kernel != "auto":
+        return kernel, f"kernel={kernel!r}"
+    n, t = x.shape[0], len(nets)
+    plan = plan_features(nets[0], x, k=k, memory=memory)
+    held = t * plan.exact_bytes
+    if plan.exact is None or held + plan.exact.peak_bytes > plan.memory:
+        return "sketch", (
+            f"the {t} exact ({n}, {n}) kernels need {C.format_bytes(held)}, above the memory "
+            f"budget of {C.format_bytes(plan.memory)}")
+    kernels = t + 2 + answers * (1 + (o if lr is not None else 0))
+    if xt is not None:
+        kernels += answers * xt.shape[0] / n
+    seconds = kernels * plan.exact.seconds
+    if seconds > limit:
+        return "sketch", (
+            f"the exact kernels are estimated at {seconds:.3g} s (about {kernels:.3g} kernels "
+            f"of ≈ {plan.exact.seconds:.3g} s), above exact_seconds={limit:g}; the features "
+            f"at k = {k} at ≈ {t * plan.seconds:.3g} s")
+    return "exact", ("the exact kernels fit the memory budget and the planner's estimate for "
+                     "them is below exact_seconds")
+
+
+def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, reason, lr, inits,
+                  layer, threshold, progress, cautions) -> RunAnalysis:
+    """The workflow on sketched features (`SketchedAnswers`); the exact-only answers refused."""
+    n, o = y.shape
+    opts = dict(k=k, seed=0, memory=memory, progress=progress)
+    feats = [ntk_features(net, x, **opts) for net in nets]
+    refused = []
+    if lr is not None:
+        refused.append(SKETCH_REFUSED.format(
+            what="Forecasts", why="they run gradient descent on the exact (N·O, N·O) kernel's "
+            "eigendecomposition, which features only estimate to within their noise.",
+            reason=reason))
+    refused.append(SKETCH_REFUSED.format(
+        what="Per-group kernel change", why="it needs each parameter group's own kernel.",
+        reason=reason))
+    if inits is not None:
+        refused.append(SKETCH_REFUSED.format(
+            what="The init-spread yardstick (`inits`)", why="it compares exact kernels of "
+            "independent initializations.", reason=reason))
+    with cautions.watch():
+        distance = tuple(None if i == 0 else features_distance(f, feats[0])
+                         for i, f in enumerate(feats))
+        align = tuple(features_alignment(f, y) for f in feats)
+        answers = []
+        for s in chosen:
+            i = int(np.flatnonzero(step_arr == s)[0])
+            f = np.asarray(feats[i].features)
+            eig, _ = features_spectrum(f, top=min(SKETCH_TOP, k))
+            ft = None if xt is None else ntk_features(nets[i], xt, **opts).features
+            trace = float(np.sum(f * f))
+            low = max(10 ** SKETCH_RIDGE_DECADES[0] * trace / n, trace / k if n > k else 0.0)
+            grid = np.geomspace(low, 10 ** SKETCH_RIDGE_DECADES[1] * trace / n, 7)
+            fits = [features_ridge(f, y, ridge=r, test_features=ft, y_test=yt) for r in grid]
+            gcv = np.asarray([fit.gcv.value for fit in fits])
+            j = int(np.argmin(gcv))
+            answers.append(SketchedCheckpoint(step=int(s), eigenvalues=eig, ridges=grid, gcv=gcv,
+                                              ridge=float(grid[j]), fit=fits[j]))
+    # an unbiased estimate of a distance near 0 can fall below it: 0 for the verdict
+    dist = np.maximum(np.asarray([0.0] + [d.value for d in distance[1:]]), 0.0)
+    verdict = laziness(distance=dist, steps=step_arr, kernel_threshold=threshold)
+    bars = max([d.error for d in distance[1:]] + [0.0])
+    sketched = SketchedAnswers(k=k, seed=0, reason=reason, distance=distance, alignment=align,
+                               checkpoints=tuple(answers), refused=tuple(refused))
+    dtype = feats[0].dtype
+    ranks = tuple(_feature_rank(net, x, layer, step, cautions)
+                  for net, step in zip(nets, step_arr, strict=True))
+    notes = [f"Sketched features (k = {k}) instead of exact kernels: {reason}. Every number is "
+             f"an estimate with a jackknife error bar; the laziness verdict rests on the sketched "
+             f"kernel distance (largest error bar ±{bars:.2g}).", *refused]
+    if dtype == "float32":
+        notes.append(FLOAT32_NOTE)
+    kinds = {
+        "kernel": f"sketch: {reason}",
+        "drift, alignment, spectrum, risk": f"sketched trace features ({n}, {k}), seed 0, "
+        "jackknife error bars",
+        "test error of kernel ridge": "sketched features, test × train" if xt is not None
+        else "none",
+        "forecast": "not computed (needs the exact kernel)" if lr is not None else "none",
+        "groups": "not computed (needs each group's exact kernel)",
+        "feature rank": _rank_kind(layer),
+        "dtype": dtype,
+    }
+    return RunAnalysis(
+        **_common_fields(nets, step_arr, n, xt, o, labels, dtype), kinds=kinds, drift=None,
+        laziness=verdict, lazy=verdict.lazy, verdict=verdict.sentence,
+        groups=(), feature_ranks=ranks, checkpoints=(),
+        cautions=tuple(dict.fromkeys(notes + cautions.items)), kernel="sketch",
+        sketched=sketched)
+
+
 def _checkpoints(source, steps, load: dict, x) -> tuple[np.ndarray, list[Net]]:
     """(steps, Nets) from a checkpoint directory or ``(step, Net)`` pairs.
 
