@@ -16,8 +16,6 @@ The flow is one-way; each public name below says where it lives:
   (`analyse_run`), the demo, the report, the command line.
 """
 
-from ._version import __version__ as __version__
-
 from ._adapters.checkpoint import checkpoint_steps as checkpoint_steps
 from ._adapters.net import Net as Net
 from ._adapters.net import load_checkpoint as load_checkpoint
@@ -75,6 +73,7 @@ from ._sketch.plan import plan_features as plan_features
 from ._tiles.view import RunInfo as RunInfo
 from ._tiles.view import StoredKernel as StoredKernel
 from ._tiles.view import open_kernel as open_kernel
+from ._version import __version__ as __version__
 from ._workflows.data import PumpReadings as PumpReadings
 from ._workflows.data import pump_readings as pump_readings
 from ._workflows.demo import DemoResult as DemoResult

@@ -256,7 +256,7 @@ def test_accelerator_budget_comes_from_its_own_memory(monkeypatch):
     assert p.memory == int(C.DEFAULT_MEMORY_FRACTION * 6_000_000)  # in whole MB: 3 MB
     # The result is held on the host: nothing reserved; each device has the whole budget.
     assert p.reserved == 0 and p.working == p.memory and p.devices == gpus
-    assert "2 gpu device(s)" in str(p)
+    assert "2 gpu devices" in str(p)
     # ... but it must fit the host: a result over half the free host memory asks for a store.
     monkeypatch.setattr(C, "host_memory", lambda: 200_000)  # 115 KB of result > 100 KB
     with pytest.raises(MemoryError, match="exceeds half the host memory .* pass `store=`"):

@@ -21,6 +21,7 @@ from .._tiles.fingerprint import ADOPTABLE, differences, fingerprint
 from .._tiles.location import stored_fingerprint
 from .._tiles.messages import STORE_MISMATCH, STORE_NEEDED
 from .._tiles.placement import check_devices, shares_host_memory
+from .._words import counted
 from . import cost as C
 from . import structured as st
 from .checks import (
@@ -147,7 +148,7 @@ class Plan:
             f"  tiles of {self.block}×{self.block} examples, factors "
             f"{'cached per block' if self.cache_factors else 'recomputed per tile'}; "
             f"budget {C.format_bytes(self.memory)}, {where}; "
-            f"{len(self.devices)} {'/'.join(kinds)} device(s), "
+            f"{counted(len(self.devices), '/'.join(kinds) + ' device')}, "
             f"{C.format_bytes(self.working)} each",
         ]
         w = max([len(leaf.name) for leaf in self.leaves] + [9])
@@ -162,7 +163,7 @@ class Plan:
             )
         lines.append(
             f"  total {C.format_flops(self.flops)}, peak ≈ {C.format_bytes(self.peak_bytes)}, "
-            f"{self.calls} jitted call(s), ≈ {self.seconds:.3g} s"
+            f"{counted(self.calls, 'jitted call')}, ≈ {self.seconds:.3g} s"
         )
         lines.append(f"  rates: {self.rates.describe()}")
         alts = ", ".join(f"{m} ≈ {s:.3g} s" for m, s in sorted(self.estimates.items(),

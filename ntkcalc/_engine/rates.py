@@ -109,8 +109,13 @@ class Rates:
         """One line: the rates and where they came from."""
         return (f"{self.matmul / 1e9:.3g} GFLOP/s matmul, {self.stream / 1e9:.3g} GB/s "
                 f"streaming, {self.call * 1e3:.3g} ms per call, {self.accumulation / 1e9:.3g} G "
-                f"scan accumulations/s ({self.platform} "
-                f"{self.device_kind}, {self.dtype}; {self.source})")
+                f"scan accumulations/s ({self.device_label}, {self.dtype}; {self.source})")
+
+    @property
+    def device_label(self) -> str:
+        """The platform, and the device kind where it says more: ``"cpu"``, ``"gpu H200"``."""
+        same = self.device_kind.lower() == self.platform.lower()
+        return self.platform if same else f"{self.platform} {self.device_kind}"
 
     def as_dict(self) -> dict:
         return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)

@@ -31,10 +31,10 @@ import os
 
 import numpy as np
 
-from .._version import __version__
 from .._analysis import _checks, spectrum
 from .._analysis._checks import COND_WARN
 from .._analysis._result import Result, read_record
+from .._version import __version__
 from .._words import counted
 from . import plots
 from .study import RunAnalysis, _plain
