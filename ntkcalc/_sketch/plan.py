@@ -77,8 +77,9 @@ class FeaturesPlan(Result):
         features_bytes: size of the features, N·rows·k·itemsize.
         in_memory: the features are held in memory (False: written to a store).
         memory: the byte budget; rate, stream: measured matmul FLOP/s and streaming bytes/s.
-        exact: the exact kernel's `ntkcalc.Plan` for the same inputs and outputs mode, or None
-            when not even one tile fits the budget (``exact_note`` says why).
+        exact: the exact kernel's `ntkcalc.Plan` for the same inputs and outputs mode (of its
+            tiles alone, as into a store, when the result does not fit in memory), or None
+            when not even one tile fits the budget; ``exact_note`` says why, in either case.
         exact_bytes: size of the exact kernel (N × N, or N×N×O×O in ``"full"``).
         exact_fits: the exact kernel and its computation fit the budget in memory.
     """
@@ -259,10 +260,16 @@ def plan_features(
 
 def _exact_plan(req, n: int, *, outputs, memory, method) -> tuple[Plan | None, str]:
     """The exact kernel's plan at the full N without reading x: the planner needs only the
-    inputs' shape and dtype, so it gets a zero-stride view of one example N times."""
+    inputs' shape and dtype, so it gets a zero-stride view of one example N times. When the
+    result does not fit in memory, the plan of its tiles alone (as into a store), with why."""
     view = np.broadcast_to(req.x1[:1], (n,) + tuple(req.x1.shape[1:]))
+    req = dataclasses.replace(req, x1=view)
     try:
-        return plan_request(dataclasses.replace(req, x1=view), outputs=outputs,
-                            memory=memory, method=method), ""
+        return plan_request(req, outputs=outputs, memory=memory, method=method), ""
+    except MemoryError as err:
+        note = str(err)
+    try:  # the result does not fit in memory: its tiles may (into a store)
+        return plan_request(req, outputs=outputs, memory=memory, method=method,
+                            reserve=False), note
     except MemoryError as err:
         return None, str(err)
