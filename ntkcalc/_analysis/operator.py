@@ -31,7 +31,7 @@ from .._engine.options import (
     basis_size,
     check_choice,
 )
-from .._engine.planner import _custom_vjp, plan_request, prepare
+from .._engine.planner import plan_request, prepare, uses_custom_vjp
 from .._engine.program import Program, compiled
 from .._engine.select import ParamFilter
 from .._kernel import Precision, precision_scope
@@ -329,7 +329,7 @@ def ntk_operator(
         # The per-leaf representations; the plan's tiles and their budget are not used here.
         plan = plan_request(req, outputs=outputs, memory=None, method="structured",
                             reserve=False)
-        no_forward = _custom_vjp(plan.program.analysis.closed.jaxpr)
+        no_forward = uses_custom_vjp(plan.program.analysis.closed.jaxpr)
         if method == "products" and no_forward:
             raise ValueError(
                 "`method`='products' needs forward-mode derivatives, but the model uses a "

@@ -249,7 +249,7 @@ def _trace_key(req: Request) -> tuple:
     )
 
 
-def _traced(req: Request, base: Program):
+def traced(req: Request, base: Program):
     """(forward FLOPs, activations, structured analysis) of the per-example function, traced
     once per (Net.call, parameter selection, shapes and dtypes): repeated calls reuse it, and so
     reuse the compiled steps keyed on the resulting `Program`."""
@@ -263,7 +263,6 @@ def _traced(req: Request, base: Program):
     return _TRACED[key]
 
 
-traced = _traced  # the package-internal name (`ntkcalc._sketch` uses it)
 
 
 def _blocks(n1: int, n2: int, peak, budget: int) -> int | None:
@@ -552,7 +551,7 @@ def _context(req: Request, outputs: str) -> _Context:
     shapes = [tuple(np.shape(d)) for d in req.diff]
     base = Program(req.net.call, jax.tree_util.tree_structure(req.params), sel, outputs, o,
                    "jacobian", ("dense",) * len(req.diff))
-    fwd, acts, analysis = _traced(req, base)
+    fwd, acts, analysis = traced(req, base)
     shape = _Shape(n1, n2, sym, n1 * (n1 + 1) / 2 if sym else n1 * n2,
                    math.prod(tile_shape(outputs, 1, 1, o)), C.itemsize(req.dtype))
     return _Context(req, outputs, base, names, shapes,
@@ -565,7 +564,7 @@ def _costed(ctx: _Context, method: str) -> list[str]:
     if method != "auto":
         return [method]
     costed = ["jacobian", "structured", "jvp"]
-    if _custom_vjp(ctx.analysis.closed.jaxpr):
+    if uses_custom_vjp(ctx.analysis.closed.jaxpr):
         costed.remove("jvp")  # forward mode is undefined through jax.custom_vjp
     return costed
 
@@ -801,14 +800,14 @@ def _check_differentiable(req: Request, analysis, names: list[str], method: str)
             f"`net`'s outputs do not depend on its parameters ({shown}), so the kernel would be "
             "zero: check that `apply` uses `params` rather than values captured in a closure."
         )
-    if method == "jvp" and _custom_vjp(analysis.closed.jaxpr):
+    if method == "jvp" and uses_custom_vjp(analysis.closed.jaxpr):
         raise ValueError(
             "`method`='jvp' needs forward-mode derivatives, but the model uses a jax.custom_vjp "
             "function, which has none: use method='jacobian' or 'structured' (or 'auto')."
         )
 
 
-def _custom_vjp(jaxpr) -> bool:
+def uses_custom_vjp(jaxpr) -> bool:
     """Whether ``jaxpr`` (or any jaxpr nested in its equations) calls a jax.custom_vjp rule."""
     for eqn in jaxpr.eqns:
         if eqn.primitive.name.startswith("custom_vjp"):
@@ -816,7 +815,7 @@ def _custom_vjp(jaxpr) -> bool:
         for value in eqn.params.values():
             for sub in value if isinstance(value, tuple | list) else (value,):
                 inner = getattr(sub, "jaxpr", sub)
-                if hasattr(inner, "eqns") and _custom_vjp(inner):
+                if hasattr(inner, "eqns") and uses_custom_vjp(inner):
                     return True
     return False
 
