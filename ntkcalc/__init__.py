@@ -70,6 +70,8 @@ from ._sketch.features import Features as Features
 from ._sketch.features import ntk_features as ntk_features
 from ._sketch.plan import FeaturesPlan as FeaturesPlan
 from ._sketch.plan import plan_features as plan_features
+from ._sketch.refine import RefinedSpectrum as RefinedSpectrum
+from ._sketch.refine import refine_spectrum as refine_spectrum
 from ._tiles.view import RunInfo as RunInfo
 from ._tiles.view import StoredKernel as StoredKernel
 from ._tiles.view import open_kernel as open_kernel

@@ -118,3 +118,20 @@ def test_quickstart_forecast_matches_linearized_sgd():
     want = np.array(losses)[ns["fc"].steps]
     np.testing.assert_allclose(ns["fc"].train_loss, want, rtol=1e-6)
     assert ns["fc"].stable and ns["fc"].kernel == "full"
+
+
+@pytest.mark.slow
+def test_sketch_refined_eigenvalues_match_lapack():
+    # Reference: scipy.linalg.eigh (LAPACK) of the exact trace kernel by `ntkcalc.ntk` (tested
+    # against jax.jacrev). Refined values are lower bounds (Cauchy interlacing, Parlett 1998 —
+    # from memory) and, once settled, close to the eigenvalues.
+    import scipy.linalg
+
+    import ntkcalc
+
+    ns = _run("docs/sketch.md")
+    k = np.asarray(ntkcalc.ntk(ns["net"], ns["x"], outputs="trace", progress=False))
+    lam = scipy.linalg.eigh(k, eigvals_only=True)[::-1][:3]
+    refined = ns["refined"]
+    assert refined.converged and np.all(refined.values <= lam * (1 + 1e-10))
+    np.testing.assert_allclose(refined.values, lam, rtol=1e-3)
