@@ -496,7 +496,7 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         f"outputs; {desc.model} ({a.num_params:,} parameters, {a.dtype}); checkpoints at steps "
         f"{', '.join(map(str, steps))}.",
         f"Kernel: sketched NTK features, k = {sk.k} per example (not the exact kernel): "
-        f"{sk.reason}. Numbers are estimates ± one jackknife standard error.",
+        f"{a.choice.reason}. Numbers are estimates ± one jackknife standard error.",
         f"Laziness verdict (on the sketched kernel distance): {a.verdict}.",
         f"Label alignment {_pm(sk.alignment[0])} → {_pm(sk.alignment[-1])}; kernel distance "
         f"to step {steps[0]} at step {steps[-1]}: {_pm(sk.distance[-1])}.",
@@ -505,7 +505,11 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         f"Not computed: {len(sk.refused)} answers that need the exact kernel (see the "
         f"cautions); cautions: {len(cautions)}.",
     ]
-    rows = [("kernel", f"sketched features, k = {sk.k}, seed {sk.seed}"), ("why", sk.reason)]
+    rows = [("kernel", f"sketched features, k = {sk.k}, seed {sk.seed}"),
+            ("why", a.choice.reason)]
+    if sk.store is not None:
+        rows.append(("features stores", f"{sk.store} ({counted(sk.computed, 'block')} computed "
+                                        f"in this call, {sk.reused} reused)"))
     for s, d, al in zip(steps, sk.distance, sk.alignment, strict=True):
         rows.append((f"step {s}: distance to step {steps[0]} / alignment",
                      f"{'—' if d is None else _pm(d)} / {_pm(al)}"))
@@ -524,7 +528,8 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         _Section("sketch", "Answers from sketched features",
                  "Each kernel is estimated by φ φᵀ with φ the sketched NTK features "
                  "(ntk_features); the same seed at every checkpoint, so distances measure the "
-                 "kernels' change, not the sketches'.", sk.to_dict(), rows=tuple(rows)),
+                 "kernels' change, not the sketches'.",
+                 {**sk.to_dict(), "choice": a.choice.to_dict()}, rows=tuple(rows)),
         rank_section,
         _setup_section(a, desc, names),
     ]
@@ -698,6 +703,7 @@ def _setup_section(a, desc: RunDescription, names: list[str]) -> _Section:
         "class_names": names, "class_counts": counts, "num_train": a.num_train,
         "num_test": a.num_test, "num_outputs": a.num_outputs, "num_params": a.num_params,
         "checkpoint_steps": a.steps, "kinds": a.kinds, "dtype": a.dtype,
+        "kernel_choice": None if a.choice is None else a.choice.to_dict(),
         "details": [list(r) for r in desc.details]})
     classes = ", ".join(names if counts is None else
                         (f"{c} ({k})" for c, k in zip(names, counts, strict=True)))
