@@ -378,3 +378,15 @@ def test_one_verdict_and_every_shown_number_in_json(run, tmp_path):
         if "error" in label or "loss" in label:
             assert "MSE" in label or "MSE" in value, label
     assert page.count("MSE: mean over examples and outputs of (f − y)²") >= 3
+
+
+def test_sketched_estimates_print_bias_corrected_where_the_bias_exceeds_the_error():
+    """A sketched number whose jackknife bias exceeds its error bar is printed as value − bias
+    (Quenouille's first-order correction) and says so; otherwise as value ± error. The numbers:
+    the kernel distance measured in docs/sketch.md (exact 1.15e-4)."""
+    from ntkcalc._workflows.report import _pm
+
+    far = ntkcalc.Uncertain(-2.74e-4, 1.1e-4, -3.19e-4, 8)
+    assert _pm(far) == "4.5e-05 ± 0.00011 (bias-corrected from -0.000274)"
+    near = ntkcalc.Uncertain(0.659, 0.014, 0.003, 8)
+    assert _pm(near) == "0.659 ± 0.014"

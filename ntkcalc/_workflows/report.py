@@ -472,10 +472,14 @@ def _rank_section(a) -> tuple[dict, _Section]:
     )
 
 
-def _pm(u, i=None) -> str:
-    """``value ± error`` of an `Uncertain` (entry i of an array estimate)."""
-    v, e = (u.value, u.error) if i is None else (u.value[i], u.error[i])
-    return f"{float(v):.4g} ± {float(e):.2g}"
+def _pm(u) -> str:
+    """``value ± error`` of a scalar `Uncertain`; where the jackknife's bias estimate exceeds the
+    error bar, the bias-corrected value ``value − bias``, saying so (a distance near 0 estimated
+    from a ratio of sketched norms is biased by more than its error bar: docs/sketch.md)."""
+    v, e, b = float(u.value), float(u.error), float(u.bias)
+    if abs(b) > e:
+        return f"{v - b:.4g} ± {e:.2g} (bias-corrected from {v:.4g})"
+    return f"{v:.4g} ± {e:.2g}"
 
 
 def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
@@ -497,7 +501,7 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         f"{', '.join(map(str, steps))}.",
         f"Kernel: sketched NTK features, k = {sk.k} per example (not the exact kernel): "
         f"{a.choice.reason}. Numbers are estimates ± one jackknife standard error.",
-        f"Laziness verdict (on the sketched kernel distance): {a.verdict}.",
+        f"Laziness verdict (on the bias-corrected sketched kernel distance): {a.verdict}.",
         f"Label alignment {_pm(sk.alignment[0])} → {_pm(sk.alignment[-1])}; kernel distance "
         f"to step {steps[0]} at step {steps[-1]}: {_pm(sk.distance[-1])}.",
         f"Kernel ridge at step {last.step}, ridge {last.ridge:.3g} chosen by GCV: GCV "
@@ -514,7 +518,9 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         rows.append((f"step {s}: distance to step {steps[0]} / alignment",
                      f"{'—' if d is None else _pm(d)} / {_pm(al)}"))
     for c in sk.checkpoints:
-        top = ", ".join(f"{float(v):.4g}" for v in np.asarray(c.eigenvalues.corrected)[:5])
+        top = ", ".join(f"{float(v):.4g} ± {float(e):.2g}" for v, e in zip(
+            np.asarray(c.eigenvalues.corrected)[:5], np.asarray(c.eigenvalues.error)[:5],
+            strict=True))
         rows.append((f"step {c.step}: top eigenvalues (bias-corrected)", top))
         rows.append((f"step {c.step}: kernel ridge at {c.ridge:.3g}",
                      f"train {_pm(c.fit.train_mse)}, GCV {_pm(c.fit.gcv)}"

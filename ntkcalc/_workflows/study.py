@@ -258,7 +258,8 @@ class SketchedAnswers(Result):
         k, seed: features per example and the projections' seed, shared by every checkpoint
             (so the distance between checkpoints is the kernels', not two sketches').
         distance: (T,) `Uncertain` kernel distance ``1 − cos(K_t, K_0)`` to the first checkpoint
-            (`features_distance`; None at the first).
+            (`features_distance`; None at the first). Near 0 its jackknife bias can exceed its
+            error bar (docs/sketch.md): read ``.corrected``, as the verdict and the report do.
         alignment: (T,) `Uncertain` centered kernel-target alignment per checkpoint.
         checkpoints: `SketchedCheckpoint` at each step of ``forecast_from``.
         refused: the answers that need the exact kernel, each with the reason (also cautions).
@@ -327,7 +328,8 @@ class RunAnalysis(Result):
             conditioning, precision, estimator disagreement), one sentence each.
         kernel: ``"exact"`` (kernels by `ntk`) or ``"sketch"`` (features by `ntk_features`:
             ``drift`` is None, ``groups`` and ``checkpoints`` are empty, the answers are in
-            ``sketched``, the laziness verdict rests on the sketched kernel distance).
+            ``sketched``, the laziness verdict rests on the bias-corrected sketched kernel
+            distance).
         sketched: `SketchedAnswers`, or None on the exact path.
         choice: `KernelChoice`: which path and the numbers it was chosen by (memory, the
             planner's estimates, the limit); ``choice.reason`` is the sentence the report prints.
@@ -425,9 +427,9 @@ class RunAnalysis(Result):
         sk = self.sketched
         change, align, spec = fig.subplots(1, 3)
         later = [(s, d) for s, d in zip(self.steps, sk.distance, strict=True) if d is not None]
-        change.errorbar([s for s, _ in later], [d.value for _, d in later],
+        change.errorbar([s for s, _ in later], [d.corrected for _, d in later],
                         yerr=[d.error for _, d in later], fmt="s--", color=plots.ESTIMATE,
-                        label="distance 1 − cos(K_t, K_0)")
+                        label="distance 1 − cos(K_t, K_0), bias-corrected")
         change.axhline(self.laziness.kernel_threshold, color=plots.REFERENCE, ls=":",
                        label=f"threshold {self.laziness.kernel_threshold:.0%}")
         change.set(xlabel="training step", ylabel="kernel change (sketched)",
@@ -753,8 +755,9 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, st
             j = int(np.argmin(gcv))
             answers.append(SketchedCheckpoint(step=int(s), eigenvalues=eig, ridges=grid, gcv=gcv,
                                               ridge=float(grid[j]), fit=fits[j]))
-    # an unbiased estimate of a distance near 0 can fall below it: 0 for the verdict
-    dist = np.maximum(np.asarray([0.0] + [d.value for d in distance[1:]]), 0.0)
+    # the verdict on the bias-corrected distance (a ratio of sketched norms is biased, near 0 by
+    # more than its error bar), which can still fall below 0: 0 then
+    dist = np.maximum(np.asarray([0.0] + [d.corrected for d in distance[1:]]), 0.0)
     verdict = laziness(distance=dist, steps=step_arr, kernel_threshold=threshold)
     bars = max([d.error for d in distance[1:]] + [0.0])
     sketched = SketchedAnswers(
@@ -766,8 +769,9 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, st
     ranks = tuple(_feature_rank(net, x, layer, step, cautions)
                   for net, step in zip(nets, step_arr, strict=True))
     notes = [f"Sketched features (k = {k}) instead of exact kernels: {reason}. Every number is "
-             f"an estimate with a jackknife error bar; the laziness verdict rests on the sketched "
-             f"kernel distance (largest error bar ±{bars:.2g}).", *refused]
+             f"an estimate with a jackknife error bar; the laziness verdict rests on the "
+             f"bias-corrected sketched kernel distance (largest error bar ±{bars:.2g}).",
+             *refused]
     if dtype == "float32":
         notes.append(FLOAT32_NOTE)
     kinds = {
