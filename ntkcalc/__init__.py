@@ -76,6 +76,7 @@ from ._tiles.view import RunInfo as RunInfo
 from ._tiles.view import StoredKernel as StoredKernel
 from ._tiles.view import open_kernel as open_kernel
 from ._version import __version__ as __version__
+from ._workflows.choice import KernelChoice as KernelChoice
 from ._workflows.data import PumpReadings as PumpReadings
 from ._workflows.data import pump_readings as pump_readings
 from ._workflows.demo import DemoResult as DemoResult

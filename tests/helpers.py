@@ -222,3 +222,14 @@ def save_steps(directory, params_by_step: dict) -> None:
         for step, params in params_by_step.items():
             manager.save(step, args=ocp.args.StandardSave({"params": params}))
         manager.wait_until_finished()
+
+
+def features_budget(net: ntkcalc.Net, x, *, k: int, examples: int) -> int:
+    """A `memory` budget for `ntkcalc.ntk_features(..., store=...)` on ``x`` that fits blocks of
+    ``examples`` examples (the projections plus ``examples + 0.5`` examples' working memory, by
+    the features' own memory model), so a small run writes several blocks."""
+    from ntkcalc._sketch import features as F
+
+    _, _, req, sketch, acts, _ = F.setup(net, x, k=k, outputs="trace", method="structured")
+    fixed, _, per = F.memory_parts(sketch, acts, req, n=x.shape[0], in_memory=False)
+    return int(fixed + (examples + 0.5) * per)

@@ -236,3 +236,32 @@ def test_a_checkpoint_of_another_model_is_one_line_with_status_1(run, cli):
                              f"{tmp}/digits.npz", "--out", f"{tmp}/other", "--quiet")
         assert status == 1 and len(err.strip().splitlines()) == 1, err
         assert err.startswith("ntkcalc: error:") and "Traceback" not in err
+
+
+def test_run_on_sketched_features_resumes_from_its_stores(run, cli):
+    """``run --kernel sketch --store DIR``: the features go to stores (3 training, 2 test, one
+    block each); the same command again reads every block instead of computing it and writes
+    the same numbers. The sketched alignment at the last checkpoint against its formula on the
+    exact kernel (Cortes, Mohri & Rostamizadeh, JMLR 13, 2012) within 4 jackknife errors (4σ,
+    common practice)."""
+    tmp, _, kernels, data = run
+    args = ("run", f"{tmp}/ckpt", "--model", "cli_digits_models:Mlp", "--data",
+            f"{tmp}/digits.npz", "--x-test", "x_test", "--y-test", "y_test", "--kernel",
+            "sketch", "--features", 64, "--store", f"{tmp}/features", "--quiet")
+    results = []
+    for out in ("sketch", "sketch-again"):
+        status, stdout, err = cli(*args, "--out", f"{tmp}/{out}")
+        assert status == 0, err
+        assert stdout.splitlines()[1] == "kernel: sketch: kernel='sketch'"
+        with open(f"{tmp}/{out}/result.json", encoding="utf-8") as fh:
+            results.append(json.load(fh)["sketched"])
+    first, again = results
+    assert first["store"] == os.path.abspath(f"{tmp}/features")
+    assert (first["computed"], first["reused"]) == (5, 0)
+    assert (again["computed"], again["reused"]) == (0, 5)
+    assert first["alignment"] == again["alignment"] and first["distance"] == again["distance"]
+    h = np.eye(N_TRAIN) - 1.0 / N_TRAIN
+    kc, target = h @ kernels[20] @ h, h @ data["y"] @ data["y"].T @ h
+    want = np.sum(kc * target) / (np.linalg.norm(kc) * np.linalg.norm(target))
+    got = first["alignment"][-1]
+    assert abs(got["value"] - got["bias"] - want) <= 4 * got["error"], (got, want)

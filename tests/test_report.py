@@ -337,13 +337,18 @@ def test_kernel_store_gets_spectrum_and_heatmap(tmp_path):
             in html.unescape(_text(html_path)))
 
 
+#: Byte units as printed (decimal, `ntkcalc._engine.cost.format_bytes`): "3.4 MB" is 3.4e6 bytes.
+_BYTES = {"KB": 1e3, "MB": 1e6, "GB": 1e9, "TB": 1e12}
+
+
 def _shown_numbers(text: str):
-    """Decimal numbers and percentages as shown (value, unit of the last digit)."""
-    for m in re.finditer(r"(?<![\w.])(-?\d+\.\d+)(e[-+]?\d+)?(%?)", text):
-        digits, exp, pct = m.groups()
+    """Decimal numbers, percentages and byte sizes as shown (value, unit of the last digit)."""
+    for m in re.finditer(r"(?<![\w.])(-?\d+\.\d+)(e[-+]?\d+)?(%| [KMGT]B\b)?", text):
+        digits, exp, unit = m.groups()
         step = 10.0 ** -len(digits.split(".")[1]) * (10.0 ** int(exp[1:]) if exp else 1.0)
         value = float(digits + (exp or ""))
-        yield (value / 100, step / 100) if pct else (value, step)
+        scale = 0.01 if unit == "%" else _BYTES[unit.strip()] if unit else 1.0
+        yield value * scale, step * scale
 
 
 def test_one_verdict_and_every_shown_number_in_json(run, tmp_path):
@@ -378,3 +383,15 @@ def test_one_verdict_and_every_shown_number_in_json(run, tmp_path):
         if "error" in label or "loss" in label:
             assert "MSE" in label or "MSE" in value, label
     assert page.count("MSE: mean over examples and outputs of (f − y)²") >= 3
+
+
+def test_sketched_estimates_print_bias_corrected_where_the_bias_exceeds_the_error():
+    """A sketched number whose jackknife bias exceeds its error bar is printed as value − bias
+    (Quenouille's first-order correction) and says so; otherwise as value ± error. The numbers:
+    the kernel distance measured in docs/sketch.md (exact 1.15e-4)."""
+    from ntkcalc._workflows.report import _pm
+
+    far = ntkcalc.Uncertain(-2.74e-4, 1.1e-4, -3.19e-4, 8)
+    assert _pm(far) == "4.5e-05 ± 0.00011 (bias-corrected from -0.000274)"
+    near = ntkcalc.Uncertain(0.659, 0.014, 0.003, 8)
+    assert _pm(near) == "0.659 ± 0.014"

@@ -18,7 +18,7 @@ import pytest
 
 import ntkcalc
 from ntkcalc._sketch import features as F
-from tests.helpers import ZOO
+from tests.helpers import ZOO, features_budget
 
 TESTS = os.path.dirname(os.path.abspath(__file__))
 N, K = 10, 8
@@ -61,10 +61,7 @@ def model():
 @functools.cache
 def small_memory() -> int:
     """A budget that fits blocks of 3 examples (4 blocks of N = 10)."""
-    net, x = model()
-    _, _, req, sketch, acts, _ = F.setup(net, x, k=K, outputs="trace", method="structured")
-    fixed, _, per = F.memory_parts(sketch, acts, req, n=N, in_memory=False)
-    return int(fixed + 3.5 * per)
+    return features_budget(*model(), k=K, examples=3)
 
 
 def run(path, **kw):

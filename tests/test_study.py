@@ -392,7 +392,8 @@ def test_sketched_run_matches_exact_within_error_bars(sketched):
     exact, sk, _ = sketched
     assert sk.kernel == "sketch" and exact.kernel == "exact"
     assert sk.kinds["kernel"] == "sketch: kernel='sketch'"
-    assert exact.kinds["kernel"].startswith("exact: the exact kernels fit")
+    assert exact.choice.rule == "fits" and exact.kinds["kernel"] == f"exact: {exact.choice.reason}"
+    assert sk.choice.rule == "requested" and sk.choice.reason == "kernel='sketch'"
     s = sk.sketched
     assert s.distance[0] is None
     _within(s.distance[-1], exact.drift.distance_to_initial[-1])

@@ -150,6 +150,12 @@ def _ridge_solve(gram: np.ndarray, rhs: np.ndarray, r: float) -> tuple[np.ndarra
         np.sum(np.tril(linv) ** 2))
 
 
+def features_trace(features) -> float:
+    """``tr K̂ = ‖φ‖²_F``, the trace of the sketched kernel (an unbiased estimate of tr K), in one
+    streamed pass over the rows (the features may stay on disk)."""
+    return float(sum(np.sum(part * part) for _, part in _chunks(_array("features", features))))
+
+
 def features_spectrum(features, *, top: int = 10, groups: int = GROUPS,
                       vectors: bool = False) -> tuple[Uncertain, np.ndarray | None]:
     """Top eigenvalues of ``K̂ = φ φᵀ`` from the k × k Gram ``φᵀφ`` (the SVD of φ), with errors.

@@ -50,6 +50,7 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     from .._version import __version__
+    from .choice import KernelPath
     from .study import Loss
 
     parser.add_argument("--version", action="version", version=f"ntkcalc {__version__}")
@@ -113,6 +114,15 @@ def build_parser() -> argparse.ArgumentParser:
                      help="the run's training loss (default: mse)")
     run.add_argument("--full-batch-gd", action="store_true",
                      help="the run was full-batch gradient descent on --x (forecasts compare)")
+    run.add_argument("--kernel", choices=get_args(KernelPath), default="auto",
+                     help="exact kernels, sketched features, or auto: features when the exact "
+                          "kernels exceed --memory or the planner's time limit (default: auto)")
+    run.add_argument("--features", type=int, metavar="K",
+                     help="features per example on the sketched path (default: analyse_run's)")
+    run.add_argument("--memory", help="memory budget, e.g. 8GB (default: half the free memory)")
+    run.add_argument("--store", metavar="DIR",
+                     help="directory for the sketched path's features: resumable stores, one "
+                          "per checkpoint; rerun the same command to resume after an interruption")
 
     drift = _subparser(
         sub, "drift", help="The kernel at every checkpoint of a run and how far it moved: "
@@ -317,10 +327,12 @@ def _run(args) -> int:
                 "y_test": _load_array(args.data, args.y_test, flag="--data", command="run",
                                       key_flag="--y-test")}
     options = {k: v for k, v in (("lr", args.lr), ("horizon", args.horizon),
-                                 ("forecast_from", args.forecast_from)) if v is not None}
+                                 ("forecast_from", args.forecast_from),
+                                 ("features", args.features), ("memory", args.memory),
+                                 ("store", args.store)) if v is not None}
     _say(args.quiet, f"analysing {args.checkpoint} on {len(x)} training examples")
     result = analyse_run(args.checkpoint, x, y, **shared, **test, **options, loss=args.loss,
-                         full_batch_gd=args.full_batch_gd)
+                         full_batch_gd=args.full_batch_gd, kernel=args.kernel)
     from .report import RunDescription
 
     what = f"{len(x)} training examples ({args.data}: {args.x}, {args.y})" + (
@@ -333,6 +345,7 @@ def _run(args) -> int:
                  ("steps", ", ".join(str(int(s)) for s in result.steps))))
     html, data = result.write(out, description=description)
     print(result.verdict)
+    print(f"kernel: {result.kinds['kernel']}")
     print(f"report: {html}\ndata: {data}\nresult: {os.path.join(out, 'result.json')}")
     return 0
 

@@ -472,10 +472,14 @@ def _rank_section(a) -> tuple[dict, _Section]:
     )
 
 
-def _pm(u, i=None) -> str:
-    """``value ± error`` of an `Uncertain` (entry i of an array estimate)."""
-    v, e = (u.value, u.error) if i is None else (u.value[i], u.error[i])
-    return f"{float(v):.4g} ± {float(e):.2g}"
+def _pm(u) -> str:
+    """``value ± error`` of a scalar `Uncertain`; where the jackknife's bias estimate exceeds the
+    error bar, the bias-corrected value ``value − bias``, saying so (a distance near 0 estimated
+    from a ratio of sketched norms is biased by more than its error bar: docs/sketch.md)."""
+    v, e, b = float(u.value), float(u.error), float(u.bias)
+    if abs(b) > e:
+        return f"{v - b:.4g} ± {e:.2g} (bias-corrected from {v:.4g})"
+    return f"{v:.4g} ± {e:.2g}"
 
 
 def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
@@ -496,8 +500,8 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         f"outputs; {desc.model} ({a.num_params:,} parameters, {a.dtype}); checkpoints at steps "
         f"{', '.join(map(str, steps))}.",
         f"Kernel: sketched NTK features, k = {sk.k} per example (not the exact kernel): "
-        f"{sk.reason}. Numbers are estimates ± one jackknife standard error.",
-        f"Laziness verdict (on the sketched kernel distance): {a.verdict}.",
+        f"{a.choice.reason}. Numbers are estimates ± one jackknife standard error.",
+        f"Laziness verdict (on the bias-corrected sketched kernel distance): {a.verdict}.",
         f"Label alignment {_pm(sk.alignment[0])} → {_pm(sk.alignment[-1])}; kernel distance "
         f"to step {steps[0]} at step {steps[-1]}: {_pm(sk.distance[-1])}.",
         f"Kernel ridge at step {last.step}, ridge {last.ridge:.3g} chosen by GCV: GCV "
@@ -505,12 +509,18 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         f"Not computed: {len(sk.refused)} answers that need the exact kernel (see the "
         f"cautions); cautions: {len(cautions)}.",
     ]
-    rows = [("kernel", f"sketched features, k = {sk.k}, seed {sk.seed}"), ("why", sk.reason)]
+    rows = [("kernel", f"sketched features, k = {sk.k}, seed {sk.seed}"),
+            ("why", a.choice.reason)]
+    if sk.store is not None:
+        rows.append(("features stores", f"{sk.store} ({counted(sk.computed, 'block')} computed "
+                                        f"in this call, {sk.reused} reused)"))
     for s, d, al in zip(steps, sk.distance, sk.alignment, strict=True):
         rows.append((f"step {s}: distance to step {steps[0]} / alignment",
                      f"{'—' if d is None else _pm(d)} / {_pm(al)}"))
     for c in sk.checkpoints:
-        top = ", ".join(f"{float(v):.4g}" for v in np.asarray(c.eigenvalues.corrected)[:5])
+        top = ", ".join(f"{float(v):.4g} ± {float(e):.2g}" for v, e in zip(
+            np.asarray(c.eigenvalues.corrected)[:5], np.asarray(c.eigenvalues.error)[:5],
+            strict=True))
         rows.append((f"step {c.step}: top eigenvalues (bias-corrected)", top))
         rows.append((f"step {c.step}: kernel ridge at {c.ridge:.3g}",
                      f"train {_pm(c.fit.train_mse)}, GCV {_pm(c.fit.gcv)}"
@@ -524,7 +534,8 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         _Section("sketch", "Answers from sketched features",
                  "Each kernel is estimated by φ φᵀ with φ the sketched NTK features "
                  "(ntk_features); the same seed at every checkpoint, so distances measure the "
-                 "kernels' change, not the sketches'.", sk.to_dict(), rows=tuple(rows)),
+                 "kernels' change, not the sketches'.",
+                 {**sk.to_dict(), "choice": a.choice.to_dict()}, rows=tuple(rows)),
         rank_section,
         _setup_section(a, desc, names),
     ]
@@ -698,6 +709,7 @@ def _setup_section(a, desc: RunDescription, names: list[str]) -> _Section:
         "class_names": names, "class_counts": counts, "num_train": a.num_train,
         "num_test": a.num_test, "num_outputs": a.num_outputs, "num_params": a.num_params,
         "checkpoint_steps": a.steps, "kinds": a.kinds, "dtype": a.dtype,
+        "kernel_choice": None if a.choice is None else a.choice.to_dict(),
         "details": [list(r) for r in desc.details]})
     classes = ", ".join(names if counts is None else
                         (f"{c} ({k})" for c, k in zip(names, counts, strict=True)))

@@ -44,7 +44,7 @@ import json
 import os
 import warnings
 from collections.abc import Sequence
-from typing import Literal, get_args
+from typing import get_args
 
 import jax
 import numpy as np
@@ -61,7 +61,6 @@ from .._analysis.laziness import relative_change as _relative_change
 from .._analysis.ridge import ridge_fit
 from .._analysis.risk import RiskEstimates, risk
 from .._analysis.spectrum import Spectrum, spectrum
-from .._engine import cost as C
 from .._engine.options import check_choice
 from .._kernel import ntk, ntk_by_layer
 from .._kind import KernelArray, per_output_kernel
@@ -71,10 +70,11 @@ from .._sketch.analysis import (
     features_distance,
     features_ridge,
     features_spectrum,
+    features_trace,
 )
 from .._sketch.features import ntk_features
-from .._sketch.plan import plan_features
 from . import plots
+from .choice import EXACT_SECONDS, KernelChoice, KernelPath, choose_kernel
 from .drift import DEFAULT_THRESHOLD, MOVED_NOTE, Drift, _from_directory, drift
 
 #: Above this many (example, output) rows N·O the forecast uses the per-output kernel ``trace / O``
@@ -92,12 +92,6 @@ RIDGE_DECADES = (-6.0, 2.0)
 #: each batch shape compiles once).
 OUTPUT_BATCH = 1024
 
-KernelPath = Literal["auto", "exact", "sketch"]
-
-#: ``kernel="auto"`` takes sketched features when the planner's time estimate for the exact
-#: kernels the workflow computes (T checkpoints, two per-group passes, the forecasts) exceeds
-#: this many seconds (our choice: half an hour, the scale of one N = 50,000 kernel here).
-EXACT_SECONDS = 1800.0
 #: Features per example of the sketched path (docs/sketch.md: relative error of a top
 #: eigenvalue ≈ √(c/k), c ≈ 2-8, measured there).
 FEATURES_K = 2048
@@ -263,26 +257,33 @@ class SketchedAnswers(Result):
     Fields:
         k, seed: features per example and the projections' seed, shared by every checkpoint
             (so the distance between checkpoints is the kernels', not two sketches').
-        reason: why features were used.
         distance: (T,) `Uncertain` kernel distance ``1 − cos(K_t, K_0)`` to the first checkpoint
-            (`features_distance`; None at the first).
+            (`features_distance`; None at the first). Near 0 its jackknife bias can exceed its
+            error bar (docs/sketch.md): read ``.corrected``, as the verdict and the report do.
         alignment: (T,) `Uncertain` centered kernel-target alignment per checkpoint.
         checkpoints: `SketchedCheckpoint` at each step of ``forecast_from``.
         refused: the answers that need the exact kernel, each with the reason (also cautions).
+        store: the directory of the features stores (`analyse_run`'s ``store``), or None when
+            the features were held in memory.
+        computed, reused: blocks of features computed in this call and found complete in the
+            stores (a resumed run reuses what an interrupted one finished).
     """
 
     k: int
     seed: int
-    reason: str
     distance: tuple
     alignment: tuple
     checkpoints: tuple[SketchedCheckpoint, ...]
     refused: tuple[str, ...]
+    store: str | None = None
+    computed: int = 0
+    reused: int = 0
 
     def to_dict(self) -> dict:
         """Every number as plain values: each estimate as value, error, bias."""
         return _plain({
-            "k": self.k, "seed": self.seed, "reason": self.reason,
+            "k": self.k, "seed": self.seed, "store": self.store, "computed": self.computed,
+            "reused": self.reused,
             "distance": [None if d is None else _uncertain(d) for d in self.distance],
             "alignment": [_uncertain(a) for a in self.alignment],
             "checkpoints": [{
@@ -327,8 +328,11 @@ class RunAnalysis(Result):
             conditioning, precision, estimator disagreement), one sentence each.
         kernel: ``"exact"`` (kernels by `ntk`) or ``"sketch"`` (features by `ntk_features`:
             ``drift`` is None, ``groups`` and ``checkpoints`` are empty, the answers are in
-            ``sketched``, the laziness verdict rests on the sketched kernel distance).
+            ``sketched``, the laziness verdict rests on the bias-corrected sketched kernel
+            distance).
         sketched: `SketchedAnswers`, or None on the exact path.
+        choice: `KernelChoice`: which path and the numbers it was chosen by (memory, the
+            planner's estimates, the limit); ``choice.reason`` is the sentence the report prints.
     """
 
     steps: np.ndarray
@@ -350,12 +354,14 @@ class RunAnalysis(Result):
     cautions: tuple[str, ...]
     kernel: str = "exact"
     sketched: SketchedAnswers | None = None
+    choice: KernelChoice | None = None
 
     def to_dict(self) -> dict:
         """Every number as plain Python values (NaN and inf → None); what `to_json` writes."""
         d = self.drift
         return _plain({
             "kernel": self.kernel,
+            "choice": None if self.choice is None else self.choice.to_dict(),
             "sketched": None if self.sketched is None else self.sketched.to_dict(),
             "steps": self.steps, "num_train": self.num_train, "num_test": self.num_test,
             "num_outputs": self.num_outputs, "num_params": self.num_params,
@@ -421,9 +427,9 @@ class RunAnalysis(Result):
         sk = self.sketched
         change, align, spec = fig.subplots(1, 3)
         later = [(s, d) for s, d in zip(self.steps, sk.distance, strict=True) if d is not None]
-        change.errorbar([s for s, _ in later], [d.value for _, d in later],
+        change.errorbar([s for s, _ in later], [d.corrected for _, d in later],
                         yerr=[d.error for _, d in later], fmt="s--", color=plots.ESTIMATE,
-                        label="distance 1 − cos(K_t, K_0)")
+                        label="distance 1 − cos(K_t, K_0), bias-corrected")
         change.axhline(self.laziness.kernel_threshold, color=plots.REFERENCE, ls=":",
                        label=f"threshold {self.laziness.kernel_threshold:.0%}")
         change.set(xlabel="training step", ylabel="kernel change (sketched)",
@@ -506,6 +512,7 @@ def analyse_run(
     kernel: KernelPath = "auto",
     features: int = FEATURES_K,
     memory=None,
+    store=None,
     exact_seconds: float = EXACT_SECONDS,
     progress: bool = False,
 ) -> RunAnalysis:
@@ -558,7 +565,16 @@ def analyse_run(
             used and why.
         features: features per example on the sketched path (`ntk_features`' k).
         memory: the memory budget (bytes or e.g. ``"8GB"``; default half the memory available
-            now) of the choice and of the features.
+            now) of the choice and of the features: without ``store`` it holds every
+            checkpoint's features, with ``store`` only the projections and one block of them
+            (`ntk_features`' ``memory``).
+        store: a directory for the sketched path's features (created): each checkpoint's
+            training features go to a resumable zarr store ``<store>/step-<S>-train.zarr`` (and
+            the test features at each step of ``forecast_from`` to ``step-<S>-test.zarr``), one
+            seed for all, and the answers read them from disk in chunks. Calling again with the
+            same arguments after an interruption computes only the blocks not yet finished
+            (``result.sketched.computed`` and ``.reused`` count them). None: features in memory.
+            Kernels of the exact path are held in memory either way.
         exact_seconds: the time limit of ``kernel="auto"`` for the exact path.
         progress: progress bars of the kernel computations.
 
@@ -582,6 +598,12 @@ def analyse_run(
     check_choice("kernel", kernel, get_args(KernelPath))
     features = _checks.positive_int("features", features)
     exact_seconds = _checks.positive("exact_seconds", exact_seconds)
+    if store is not None and not isinstance(store, str | os.PathLike):
+        raise TypeError(f"`store` must be a directory path (str or os.PathLike) for the features "
+                        f"stores, got {type(store).__name__}.")
+    if store is not None and kernel == "exact":
+        raise ValueError("`store` holds sketched features, and `kernel`='exact' computes none: "
+                         "leave out `store`, or pass kernel='auto' or 'sketch'.")
     step_arr, nets = _checkpoints(source, steps, dict(module=module, example=example,
                                                       variables=variables, item=item,
                                                       subtree=subtree), x)
@@ -614,12 +636,14 @@ def analyse_run(
         record = (step_arr, np.stack(outputs), None)
     options = {"progress": progress}
     cautions = _Cautions()
-    path, reason = _kernel_path(kernel, nets, x, xt, k=features, memory=memory,
-                                limit=exact_seconds, answers=len(chosen), lr=lr, o=o)
-    if path == "sketch":
+    choice = choose_kernel(kernel, nets, x, xt, k=features, memory=memory, limit=exact_seconds,
+                           answers=len(chosen), forecasts=lr is not None, o=o,
+                           to_store=store is not None)
+    if choice.path == "sketch":
         return _sketched_run(nets, step_arr, x, y, xt, yt, chosen, labels=labels, k=features,
-                             memory=memory, reason=reason, lr=lr, inits=inits, layer=layer,
-                             threshold=threshold, progress=progress, cautions=cautions)
+                             memory=memory, store=store, choice=choice, lr=lr, inits=inits,
+                             layer=layer, threshold=threshold, progress=progress,
+                             cautions=cautions)
     with cautions.watch():
         dr = drift(nets, x, y, steps=step_arr.tolist(), inits=inits, threshold=threshold,
                    **options)
@@ -657,7 +681,7 @@ def analyse_run(
     if lr is not None and not full_batch_gd:
         notes.append(NOT_GD_NOTE.format(lr=lr))
     kinds = {
-        "kernel": f"exact: {reason}",
+        "kernel": f"exact: {choice.reason}",
         "drift, alignment, spectrum, risk, groups": f"trace (N, N) = ({n}, {n})",
         "test error of kernel ridge": "trace, test × train" if xt is not None else "none",
         "forecast": ", ".join(sorted({a.kernel for a in answers})) if lr is not None else "none",
@@ -668,7 +692,7 @@ def analyse_run(
         **_common_fields(nets, step_arr, n, xt, o, labels, dtype), kinds=kinds, drift=dr,
         laziness=verdict, lazy=verdict.lazy,
         verdict=verdict.sentence, groups=groups, feature_ranks=ranks, checkpoints=tuple(answers),
-        cautions=tuple(dict.fromkeys(notes + cautions.items)),
+        cautions=tuple(dict.fromkeys(notes + cautions.items)), choice=choice,
     )
 
 
@@ -686,40 +710,17 @@ def _rank_kind(layer) -> str:
             else f"features of {layer!r} (no kernel)")
 
 
-def _kernel_path(kernel: str, nets, x, xt, *, k: int, memory, limit: float, answers: int,
-                 lr, o: int) -> tuple[str, str]:
-    """("exact" or "sketch", why). The exact path holds T trace kernels (N, N) at once and
-    computes about T + 2 + (answers · (1 + O) with forecasts) kernels of that size (drift, the
-    per-group kernels at the first and last checkpoint, each chosen checkpoint's full kernel)
-    plus the test-train ones: priced by the planner (`plan_features` plans both)."""
-    if kernel != "auto":
-        return kernel, f"kernel={kernel!r}"
-    n, t = x.shape[0], len(nets)
-    plan = plan_features(nets[0], x, k=k, memory=memory)
-    held = t * plan.exact_bytes
-    if plan.exact is None or held + plan.exact.peak_bytes > plan.memory:
-        return "sketch", (
-            f"the {t} exact ({n}, {n}) kernels need {C.format_bytes(held)}, above the memory "
-            f"budget of {C.format_bytes(plan.memory)}")
-    kernels = t + 2 + answers * (1 + (o if lr is not None else 0))
-    if xt is not None:
-        kernels += answers * xt.shape[0] / n
-    seconds = kernels * plan.exact.seconds
-    if seconds > limit:
-        return "sketch", (
-            f"the exact kernels are estimated at {seconds:.3g} s (about {kernels:.3g} kernels "
-            f"of ≈ {plan.exact.seconds:.3g} s), above exact_seconds={limit:g}; the features "
-            f"at k = {k} at ≈ {t * plan.seconds:.3g} s")
-    return "exact", ("the exact kernels fit the memory budget and the planner's estimate for "
-                     "them is below exact_seconds")
-
-
-def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, reason, lr, inits,
-                  layer, threshold, progress, cautions) -> RunAnalysis:
-    """The workflow on sketched features (`SketchedAnswers`); the exact-only answers refused."""
+def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, store, choice,
+                  lr, inits, layer, threshold, progress, cautions) -> RunAnalysis:
+    """The workflow on sketched features (`SketchedAnswers`); the exact-only answers refused.
+    With ``store`` the features go to stores under it (`_feature_stores`) and are read back in
+    chunks by the analyses."""
     n, o = y.shape
+    reason = choice.reason
+    stores = _feature_stores(store, step_arr, chosen)
     opts = dict(k=k, seed=0, memory=memory, progress=progress)
-    feats = [ntk_features(net, x, **opts) for net in nets]
+    feats = [ntk_features(net, x, store=stores.get((int(s), "train")), **opts)
+             for net, s in zip(nets, step_arr, strict=True)]
     refused = []
     if lr is not None:
         refused.append(SKETCH_REFUSED.format(
@@ -737,13 +738,16 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, re
         distance = tuple(None if i == 0 else features_distance(f, feats[0])
                          for i, f in enumerate(feats))
         align = tuple(features_alignment(f, y) for f in feats)
-        answers = []
+        answers, tests = [], []
         for s in chosen:
             i = int(np.flatnonzero(step_arr == s)[0])
-            f = np.asarray(feats[i].features)
+            f = feats[i]
             eig, _ = features_spectrum(f, top=min(SKETCH_TOP, k))
-            ft = None if xt is None else ntk_features(nets[i], xt, **opts).features
-            trace = float(np.sum(f * f))
+            ft = None
+            if xt is not None:
+                ft = ntk_features(nets[i], xt, store=stores.get((int(s), "test")), **opts)
+                tests.append(ft)
+            trace = features_trace(f)
             low = max(10 ** SKETCH_RIDGE_DECADES[0] * trace / n, trace / k if n > k else 0.0)
             grid = np.geomspace(low, 10 ** SKETCH_RIDGE_DECADES[1] * trace / n, 7)
             fits = [features_ridge(f, y, ridge=r, test_features=ft, y_test=yt) for r in grid]
@@ -751,18 +755,23 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, re
             j = int(np.argmin(gcv))
             answers.append(SketchedCheckpoint(step=int(s), eigenvalues=eig, ridges=grid, gcv=gcv,
                                               ridge=float(grid[j]), fit=fits[j]))
-    # an unbiased estimate of a distance near 0 can fall below it: 0 for the verdict
-    dist = np.maximum(np.asarray([0.0] + [d.value for d in distance[1:]]), 0.0)
+    # the verdict on the bias-corrected distance (a ratio of sketched norms is biased, near 0 by
+    # more than its error bar), which can still fall below 0: 0 then
+    dist = np.maximum(np.asarray([0.0] + [d.corrected for d in distance[1:]]), 0.0)
     verdict = laziness(distance=dist, steps=step_arr, kernel_threshold=threshold)
     bars = max([d.error for d in distance[1:]] + [0.0])
-    sketched = SketchedAnswers(k=k, seed=0, reason=reason, distance=distance, alignment=align,
-                               checkpoints=tuple(answers), refused=tuple(refused))
+    sketched = SketchedAnswers(
+        k=k, seed=0, distance=distance, alignment=align, checkpoints=tuple(answers),
+        refused=tuple(refused), store=None if store is None else os.path.abspath(store),
+        computed=sum(f.computed for f in feats + tests),
+        reused=sum(f.reused for f in feats + tests))
     dtype = feats[0].dtype
     ranks = tuple(_feature_rank(net, x, layer, step, cautions)
                   for net, step in zip(nets, step_arr, strict=True))
     notes = [f"Sketched features (k = {k}) instead of exact kernels: {reason}. Every number is "
-             f"an estimate with a jackknife error bar; the laziness verdict rests on the sketched "
-             f"kernel distance (largest error bar ±{bars:.2g}).", *refused]
+             f"an estimate with a jackknife error bar; the laziness verdict rests on the "
+             f"bias-corrected sketched kernel distance (largest error bar ±{bars:.2g}).",
+             *refused]
     if dtype == "float32":
         notes.append(FLOAT32_NOTE)
     kinds = {
@@ -781,7 +790,20 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, re
         laziness=verdict, lazy=verdict.lazy, verdict=verdict.sentence,
         groups=(), feature_ranks=ranks, checkpoints=(),
         cautions=tuple(dict.fromkeys(notes + cautions.items)), kernel="sketch",
-        sketched=sketched)
+        sketched=sketched, choice=choice)
+
+
+def _feature_stores(store, step_arr, chosen) -> dict:
+    """``{(step, "train" | "test"): path}`` of the features stores under ``store`` (created;
+    empty without one): every checkpoint's training features, the test features at ``chosen``."""
+    if store is None:
+        return {}
+    root = os.fspath(store)
+    os.makedirs(root, exist_ok=True)
+    paths = {(int(s), "train"): os.path.join(root, f"step-{int(s)}-train.zarr") for s in step_arr}
+    paths.update({(int(s), "test"): os.path.join(root, f"step-{int(s)}-test.zarr")
+                  for s in chosen})
+    return paths
 
 
 def _checkpoints(source, steps, load: dict, x) -> tuple[np.ndarray, list[Net]]:
