@@ -52,8 +52,6 @@ from ._analysis.spectrum import Spectrum as Spectrum
 from ._analysis.spectrum import effective_rank as effective_rank
 from ._analysis.spectrum import participation_ratio as participation_ratio
 from ._analysis.spectrum import spectrum as spectrum
-from ._engine.planner import Plan as Plan
-from ._engine.planner import plan as plan
 from ._engine.rates import Rates as Rates
 from ._engine.rates import measure_rates as measure_rates
 from ._kernel import ntk as ntk
@@ -70,6 +68,8 @@ from ._sketch.features import Features as Features
 from ._sketch.features import ntk_features as ntk_features
 from ._sketch.plan import FeaturesPlan as FeaturesPlan
 from ._sketch.plan import plan_features as plan_features
+from ._tiles.plan import Plan as Plan
+from ._tiles.plan import plan as plan
 from ._tiles.view import RunInfo as RunInfo
 from ._tiles.view import StoredKernel as StoredKernel
 from ._tiles.view import open_kernel as open_kernel

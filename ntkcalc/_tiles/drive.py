@@ -28,12 +28,12 @@ import warnings
 import numpy as np
 
 from .._engine.checks import check_flag
-from .._engine.planner import check_plan, check_stored, plan_request
 from .blocking import tiles
 from .fingerprint import fingerprint
 from .location import check_store as check_store  # also used by the sketched-features store
 from .messages import NOT_A_STORE, STORE_DAMAGED, STORE_INCOMPLETE, ZERO_KERNEL
 from .placement import barrier, check_devices, process, share
+from .plan import check_plan, check_stored, plan_request
 from .progress import bar, logger
 from .run import assemble, iter_tiles
 from .spot_check import check_count
