@@ -1,8 +1,10 @@
-"""The planner: which method for which leaf, what block size, and what it will cost.
+"""The engine's planner: which method for which leaf, what block size, and what it will cost.
 
-`plan` traces the model once at abstract shapes (no compute), analyses which layer consumes each
-parameter, costs every method with `cost`, and picks the cheapest that fits the memory budget.
-`ntkcalc.ntk(..., method="auto")` follows the plan; printing it answers "why is this slow?".
+`prepare` validates a request; `context` traces the model once at abstract shapes (no compute)
+and analyses which layer consumes each parameter; `choose` prices every method (`BY_METHOD`)
+with `cost` at a per-device budget and picks the cheapest whose tile fits. What only the whole
+request knows (the budget, the result's reservation, a store, the devices) is the next stage's,
+`_tiles/plan.py`: this module knows nothing of stores or devices.
 """
 
 from __future__ import annotations
@@ -110,7 +112,7 @@ def _trace(req: Request, program: Program):
 _TRACED: dict = {}
 
 
-def _trace_key(req: Request) -> tuple:
+def trace_key(req: Request) -> tuple:
     """What the traced per-example function depends on: the Net's call, the parameter tree and
     selection, the shapes and dtypes of parameters, state and one input."""
     return (
@@ -127,7 +129,7 @@ def traced(req: Request, base: Program):
     """(forward FLOPs, activations, structured analysis) of the per-example function, traced
     once per (Net.call, parameter selection, shapes and dtypes): repeated calls reuse it, and so
     reuse the compiled steps keyed on the resulting `Program`."""
-    key = _trace_key(req)
+    key = trace_key(req)
     if key not in _TRACED:
         if len(_TRACED) > 64:
             _TRACED.pop(next(iter(_TRACED)))
@@ -375,7 +377,9 @@ BY_METHOD = {name: Method(name, STEPS[name], price) for name, price in (
     ("jacobian", _jacobian_cost), ("structured", _structured_cost), ("jvp", _jvp_cost))}
 
 
-def _context(req: Request, outputs: str) -> _Context:
+def context(req: Request, outputs: str) -> _Context:
+    """What every method's pricing reads from ``req`` in mode ``outputs``: sizes, the traced
+    per-example function (`traced`) and its structured analysis."""
     n1 = req.x1.shape[0]
     n2 = n1 if req.x2 is None else req.x2.shape[0]
     sym = req.x2 is None
@@ -393,7 +397,9 @@ def _context(req: Request, outputs: str) -> _Context:
                     basis_size(outputs, o), shape)
 
 
-def _costed(ctx: _Context, method: str) -> list[str]:
+def candidates(ctx: _Context, method: str) -> list[str]:
+    """The methods to price for ``method`` ("auto": every one the model allows), after refusing
+    a kernel that would be zero or that ``method`` cannot compute."""
     _check_differentiable(ctx.req, ctx.analysis, ctx.names, method)
     if method != "auto":
         return [method]
@@ -403,11 +409,12 @@ def _costed(ctx: _Context, method: str) -> list[str]:
     return costed
 
 
-def _choose(ctx: _Context, costed: list[str], *, memory, budget: int, rates: Rates,
-            single_device: bool, block: int | None = None) -> tuple[Priced, dict]:
-    """(the cheapest priced method that fits ``budget``, {method: estimated seconds})."""
+def choose(ctx: _Context, methods: list[str], *, memory, budget: int, rates: Rates,
+           single_device: bool, block: int | None = None) -> tuple[Priced, dict]:
+    """(the cheapest of ``methods`` priced at the largest tile that fits ``budget`` (or at
+    ``block``), {method: estimated seconds}); MemoryError when not even a 1×1 tile fits."""
     priced = {m: BY_METHOD[m].price(ctx, budget, rates).price(
-        ctx.shape, budget, rates, single_device=single_device) for m in costed}
+        ctx.shape, budget, rates, single_device=single_device) for m in methods}
     feasible = {m: p for m, p in priced.items() if p.block is not None}
     if not feasible:
         smallest = min(p.peak for p in priced.values())

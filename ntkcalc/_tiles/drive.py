@@ -2,8 +2,8 @@
 
 `compute` is what `ntkcalc.ntk` and `ntkcalc.ntk_by_layer` call after validating the request.
 The plan (budget, the in-memory result's reservation, the split over devices, a resumed store's
-tiles and method) is made by `planner.plan_request` alone, or given by the caller and checked
-against the request (`planner.check_plan`); this module runs it without changing it.
+tiles and method) is made by `plan.plan_request` alone, or given by the caller and checked
+against the request (`plan.check_plan`); this module runs it without changing it.
 
 Store: with ``store=`` every tile is written to a zarr store (see `store`) as soon as it is done
 and a read-only `StoredKernel` view is returned; the in-memory kernel is never built. A run
@@ -59,7 +59,7 @@ def compute(req, *, outputs, memory, method, store, progress, devices, plan=None
     views.
 
     ``plan`` (from `ntkcalc.plan`) is checked against the request and run exactly; None plans
-    here (`planner.plan_request`, once the store's record is known). ``spot_check`` entries of
+    here (`plan.plan_request`, once the store's record is known). ``spot_check`` entries of
     the finished kernel are recomputed independently (`spot_check`).
     """
     store = check_store(store)

@@ -22,11 +22,11 @@ from .._engine.planner import (
     BY_METHOD,
     LeafCost,
     Request,
-    _choose,
-    _context,
-    _costed,
-    _trace_key,
+    candidates,
+    choose,
+    context,
     prepare,
+    trace_key,
 )
 from .._engine.program import Program
 from .._engine.rates import Rates, check_rates, default_rates
@@ -215,7 +215,7 @@ def plan_request(req: Request, *, outputs: str, memory, method: str, store: str 
     budget = C.parse_memory(memory, devices=devs)
     if memory is None:
         budget -= budget % 10**6
-    key = (_trace_key(req), outputs, req.x1.shape[0],
+    key = (trace_key(req), outputs, req.x1.shape[0],
            None if req.x2 is None else req.x2.shape[0], req.num_outputs, str(req.dtype), method,
            store, devs, rates, budget, reserve)
     held = store is None if reserve is None else reserve
@@ -257,11 +257,11 @@ def _plan_request(req: Request, *, outputs: str, memory, budget: int, method: st
     or on one device when that is too small.
     """
     devs = devices
-    ctx = _context(req, outputs)
+    ctx = context(req, outputs)
     want = method
     if stored is not None and method == "auto" and stored.get("method") in BY_METHOD:
         want = stored["method"]  # resume in the store's method
-    costed = _costed(ctx, want)
+    costed = candidates(ctx, want)
     host = shares_host_memory(devs)
     result = result_bytes(req, outputs) if (store is None if reserve is None else reserve) else 0
     reserved = result if host else 0
@@ -271,8 +271,8 @@ def _plan_request(req: Request, *, outputs: str, memory, budget: int, method: st
     too_small_for_store = None
     for per_device, use in attempts if working > 0 else []:
         try:
-            best, estimates = _choose(ctx, costed, memory=memory, budget=per_device, rates=rates,
-                                      single_device=len(use) == 1)
+            best, estimates = choose(ctx, costed, memory=memory, budget=per_device, rates=rates,
+                                     single_device=len(use) == 1)
         except MemoryError:
             if share > 1 and use is devs:
                 _log.info("ntkcalc: budget too small for tiles on %d CPU devices at once; "
@@ -293,8 +293,8 @@ def _plan_request(req: Request, *, outputs: str, memory, budget: int, method: st
                 too_small_for_store = best.block
                 continue
             if stored["block"] < best.block:
-                made = build(_choose(ctx, costed, memory=memory, budget=per_device, rates=rates,
-                                     single_device=len(use) == 1, block=stored["block"])[0])
+                made = build(choose(ctx, costed, memory=memory, budget=per_device, rates=rates,
+                                    single_device=len(use) == 1, block=stored["block"])[0])
         return made
     if too_small_for_store is not None:
         raise MemoryError(
@@ -303,7 +303,7 @@ def _plan_request(req: Request, *, outputs: str, memory, budget: int, method: st
             "the first run (or more), or choose a new `store` path."
         )
     try:
-        _choose(ctx, costed, memory=memory, budget=budget, rates=rates, single_device=True)
+        choose(ctx, costed, memory=memory, budget=budget, rates=rates, single_device=True)
     except MemoryError as e:
         if not reserved:
             raise
