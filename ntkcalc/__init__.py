@@ -4,14 +4,16 @@ The flow is one-way; each public name below says where it lives:
 
 - model → `Net` (``_adapters``): wrap a JAX function, a flax linen or nnx model, an equinox
   module, a haiku transform, a checkpoint; pick the outputs to study;
-- `plan` (``_engine``): which method per parameter leaf, tile sizes, devices, estimated cost at
-  this machine's `Rates`; ``ntk(..., plan=p)`` runs exactly ``p``;
+- pricing (``_engine``): validation, the structured analysis, each method's cost per parameter
+  leaf at this machine's `Rates`;
+- `plan` (``_tiles.plan``, the tile layer's first stage): the whole request — method, tile
+  sizes, budget, store, devices; ``ntk(..., plan=p)`` runs exactly ``p``;
 - tiles (``_tiles``): blocking, the resumable store, devices and hosts;
 - `ntk`, `ntk_by_layer` (``_kernel``): the kernel as numpy arrays (or a store on disk);
 - analysis (``_analysis``): forecasts, kernel ridge and risk, spectrum, expressivity, alignment,
   the laziness verdict, matrix-free operators;
-- sketched features (``_sketch``): φ with E[φφᵀ] = Θ in linear time, and analyses on them with
-  error bars;
+- sketched features (``_sketch``): φ with E[φφᵀ] = Θ in linear time, analyses on them with
+  error bars, top eigenvalues refined by exact products;
 - workflows (``_workflows``): drift over a training run, your own run end to end
   (`analyse_run`), the demo, the report, the command line.
 """
@@ -52,8 +54,6 @@ from ._analysis.spectrum import Spectrum as Spectrum
 from ._analysis.spectrum import effective_rank as effective_rank
 from ._analysis.spectrum import participation_ratio as participation_ratio
 from ._analysis.spectrum import spectrum as spectrum
-from ._engine.planner import Plan as Plan
-from ._engine.planner import plan as plan
 from ._engine.rates import Rates as Rates
 from ._engine.rates import measure_rates as measure_rates
 from ._kernel import ntk as ntk
@@ -72,6 +72,8 @@ from ._sketch.plan import FeaturesPlan as FeaturesPlan
 from ._sketch.plan import plan_features as plan_features
 from ._sketch.refine import RefinedSpectrum as RefinedSpectrum
 from ._sketch.refine import refine_spectrum as refine_spectrum
+from ._tiles.plan import Plan as Plan
+from ._tiles.plan import plan as plan
 from ._tiles.view import RunInfo as RunInfo
 from ._tiles.view import StoredKernel as StoredKernel
 from ._tiles.view import open_kernel as open_kernel

@@ -18,10 +18,11 @@ from helpers import ZOO, assert_close, reduce_mode, reference_full
 
 import ntkcalc
 from ntkcalc._engine import cost as C
-from ntkcalc._engine import planner
 from ntkcalc._engine import rates as R
-from ntkcalc._engine.planner import plan_request, prepare, result_bytes
+from ntkcalc._engine.planner import prepare
 from ntkcalc._tiles import drive, run
+from ntkcalc._tiles import plan as planning
+from ntkcalc._tiles.plan import plan_request, result_bytes
 
 # Pinned rates (values of the order of a laptop CPU; invented, not measured).
 FIXED = R.Rates(matmul=5e10, stream=5e9, formation=((1, 1e9), (16, 1e10), (512, 4e10)),
@@ -194,7 +195,7 @@ def test_per_call_cost_is_in_the_estimate(tmp_path):
 def test_pinned_rates_reproduce_the_plan():
     net, x, _ = cnn()
     p1 = ntkcalc.plan(net, x, outputs="full", rates=FIXED, memory="50MB")
-    planner._PLANS.clear()  # planned again from scratch, not the kept plan
+    planning._PLANS.clear()  # planned again from scratch, not the kept plan
     p2 = ntkcalc.plan(net, x, outputs="full", rates=FIXED, memory="50MB")
     assert p2 is not p1 and ntkcalc.plan(net, x, outputs="full", rates=FIXED,
                                          memory="50MB") is p2  # a repeated request: kept

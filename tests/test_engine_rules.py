@@ -210,6 +210,7 @@ def test_streamed_estimate_counts_the_padded_chunk(monkeypatch):
     # formation: 2·A·T·(C + 1)·R matmul FLOPs per example (common practice), times 63/65, re-formed
     # in each tile (2/side per pair).
     from ntkcalc._engine import planner
+    from ntkcalc._tiles import plan as planning
 
     r = np.random.default_rng(2)
     params = {"w": r.normal(size=(64, 2)), "b": r.normal(size=(2,))}
@@ -220,7 +221,7 @@ def test_streamed_estimate_counts_the_padded_chunk(monkeypatch):
 
     def row(chunk):
         monkeypatch.setattr(planner, "stream_chunk", lambda *_: chunk)
-        planner._PLANS.clear()  # a kept plan of the same request was priced with other chunks
+        planning._PLANS.clear()  # a kept plan of the same request was priced with other chunks
         leaves = {leaf.name: leaf for leaf in ntkcalc.plan(net, x, method="structured",
                                                            rates=rates).leaves}
         assert (leaves["w"].representation, leaves["b"].representation) == ("streamed", "folded")

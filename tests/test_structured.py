@@ -299,8 +299,9 @@ def _forced(net, x1, x2, outputs, representation):
     import dataclasses
 
     from ntkcalc._engine import structured as st
-    from ntkcalc._engine.planner import plan_request, prepare
+    from ntkcalc._engine.planner import prepare
     from ntkcalc._engine.program import compiled
+    from ntkcalc._tiles.plan import plan_request
 
     req = prepare(net, x1, x2, outputs=outputs, method="structured")
     program = plan_request(req, outputs=outputs, memory=None, method="structured").program

@@ -15,7 +15,8 @@ import pytest
 from helpers import ZOO, assert_close, reduce_mode, reference_full
 
 import ntkcalc
-from ntkcalc._engine.planner import plan_request, prepare
+from ntkcalc._engine.planner import prepare
+from ntkcalc._tiles.plan import plan_request
 from ntkcalc._tiles.run import assemble
 
 N1, N2 = 13, 6

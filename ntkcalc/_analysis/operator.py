@@ -31,10 +31,11 @@ from .._engine.options import (
     basis_size,
     check_choice,
 )
-from .._engine.planner import plan_request, prepare, uses_custom_vjp
+from .._engine.planner import prepare, uses_custom_vjp
 from .._engine.program import Program, compiled
 from .._engine.select import ParamFilter
 from .._kernel import Precision, precision_scope
+from .._tiles.plan import plan_request
 from . import _checks
 from ._batches import batch_slices, pad_rows
 

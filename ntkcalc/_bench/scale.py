@@ -66,7 +66,8 @@ def _measure(spec: dict) -> dict:
     import resource
 
     import ntkcalc
-    from ntkcalc._engine.planner import plan_request, prepare
+    from ntkcalc._engine.planner import prepare
+    from ntkcalc._tiles.plan import plan_request
 
     net, x = _net(), _inputs(spec["n"])
     base_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6  # KB → GB

@@ -1,6 +1,6 @@
 """Machine rates: what converts a plan's FLOPs, bytes and calls into seconds.
 
-The planner's time estimate (`planner.plan_request`) is
+The planner's time estimate (`planner.choose`) is
 
     seconds = FLOPs / matmul + bytes moved / stream + formation FLOPs / formation(t)
               + jitted calls × call,

@@ -33,8 +33,8 @@ from .._analysis._result import Result
 from .._engine import cost as C
 from .._engine import structured as st
 from .._engine.options import METHODS, check_choice
-from .._engine.planner import Plan, plan_request
 from .._engine.select import ParamFilter
+from .._tiles.plan import Plan, plan_request
 from .features import (
     FeatureMethod,
     FeatureOutputs,

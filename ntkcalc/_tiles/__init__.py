@@ -1,1 +1,2 @@
-"""Tiles: blocking a kernel into tiles, running them, and assembling the result."""
+"""Tiles: the plan of the whole request (`plan.py`), blocking a kernel into tiles, running them,
+and assembling the result."""

@@ -2,8 +2,8 @@
 
 `compute` is what `ntkcalc.ntk` and `ntkcalc.ntk_by_layer` call after validating the request.
 The plan (budget, the in-memory result's reservation, the split over devices, a resumed store's
-tiles and method) is made by `planner.plan_request` alone, or given by the caller and checked
-against the request (`planner.check_plan`); this module runs it without changing it.
+tiles and method) is made by `plan.plan_request` alone, or given by the caller and checked
+against the request (`plan.check_plan`); this module runs it without changing it.
 
 Store: with ``store=`` every tile is written to a zarr store (see `store`) as soon as it is done
 and a read-only `StoredKernel` view is returned; the in-memory kernel is never built. A run
@@ -28,12 +28,12 @@ import warnings
 import numpy as np
 
 from .._engine.checks import check_flag
-from .._engine.planner import check_plan, check_stored, plan_request
 from .blocking import tiles
 from .fingerprint import fingerprint
 from .location import check_store as check_store  # also used by the sketched-features store
 from .messages import NOT_A_STORE, STORE_DAMAGED, STORE_INCOMPLETE, ZERO_KERNEL
 from .placement import barrier, check_devices, process, share
+from .plan import check_plan, check_stored, plan_request
 from .progress import bar, logger
 from .run import assemble, iter_tiles
 from .spot_check import check_count
@@ -59,7 +59,7 @@ def compute(req, *, outputs, memory, method, store, progress, devices, plan=None
     views.
 
     ``plan`` (from `ntkcalc.plan`) is checked against the request and run exactly; None plans
-    here (`planner.plan_request`, once the store's record is known). ``spot_check`` entries of
+    here (`plan.plan_request`, once the store's record is known). ``spot_check`` entries of
     the finished kernel are recomputed independently (`spot_check`).
     """
     store = check_store(store)

@@ -1,8 +1,8 @@
 """Where a kernel is stored, and what a store there already holds (read before planning).
 
-The planner (`planner.plan`) reads a store's record so that the plan of a resumed run adopts the
-store's tile size and method; the tile layer (`drive.compute`) checks it again under the store's
-lock before writing.
+The request planner (`plan.plan`) reads a store's record so that the plan of a resumed run
+adopts the store's tile size and method; the tile layer (`drive.compute`) checks it again under
+the store's lock before writing.
 """
 
 from __future__ import annotations
