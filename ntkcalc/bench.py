@@ -14,7 +14,7 @@ Rows: a tiny MLP 16-16-1 at N = 8 (the fixed cost of one call), the MLP 784-512-
 (0.93M parameters), a CNN with 3 conv layers (0.33M), a transformer encoder block on 16 tokens,
 a CNN on 32×32×3 images (321,290), four encoder blocks as an nn.scan over layers, an LSTM over
 32 steps, the dataset-scale rows of `ntkcalc._bench.scale` (``--scale``) and the
-sketched-features rows of `ntkcalc._sketch.bench_sketch` (``--sketch``).
+sketched-features rows of `ntkcalc._bench.sketch` (``--sketch``).
 """
 
 from __future__ import annotations
@@ -378,7 +378,7 @@ def main(argv: list[str] | None = None) -> int:
             print(r)
             table.append(r)
     if args.sketch:
-        from ._sketch import bench_sketch
+        from ._bench import sketch as bench_sketch
 
         table += bench_sketch.rows()
     print()

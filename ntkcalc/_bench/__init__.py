@@ -1,1 +1,2 @@
-"""Benchmarks beside `python -m ntkcalc.bench`: the dataset-scale rows (`scale.py`)."""
+"""Benchmarks beside `python -m ntkcalc.bench`: the dataset-scale rows (`scale.py`) and the
+sketched-features rows (`sketch.py`)."""

@@ -1,7 +1,7 @@
 """Benchmark rows of sketched features: accuracy against the exact kernel, and throughput.
 
 Run by ``python -m ntkcalc.bench --sketch``; each measurement in a fresh subprocess
-(``python -m ntkcalc._sketch.bench_sketch <json>``), float32 with matmul precision "highest".
+(``python -m ntkcalc._bench.sketch <json>``), float32 with matmul precision "highest".
 
 Model: the dataset-scale MLP 784-512-512-512-10 (tanh) of `ntkcalc._bench.scale`, Gaussian
 inputs. Task (regenerable): labels are the argmax of a seeded teacher network of the same
@@ -34,7 +34,7 @@ TOP = 10
 def _task(n: int):
     import numpy as np
 
-    from .._bench import scale as bs
+    from . import scale as bs
 
     net = bs._net(0)
     x = bs._inputs(n, seed=1)
@@ -172,7 +172,7 @@ def _scale(spec: dict) -> list[dict]:
 
     import ntkcalc
 
-    from .._bench import scale as bs
+    from . import scale as bs
 
     n, k = spec["n"], spec["k"]
     net = bs._net(0)
@@ -224,7 +224,7 @@ def rows(*, n_accuracy: int = 4000, ks=(1024, 2048, 4096), n_scale: int = 100_00
     out = []
     for spec in ({"kind": "accuracy", "n": n_accuracy, "ks": list(ks)},
                  {"kind": "scale", "n": n_scale, "k": k_scale}):
-        res = run_child("ntkcalc._sketch.bench_sketch", [json.dumps(spec)], timeout=7200)
+        res = run_child(__name__, [json.dumps(spec)], timeout=7200)
         for r in res["rows"]:
             log(r)
             out.append(r)
