@@ -1,6 +1,7 @@
 """The features plan against outside counts: XLA's own FLOP count of the compiled block step
 (``jax.stages.Compiled.cost_analysis``), the block `ntk_features` really uses, and the public
-exact-kernel planner `ntkcalc.plan` (tested against measured runs in tests/test_planner.py)."""
+exact-kernel planner `ntkcalc.plan` (tested against what the tile layer ran in
+tests/test_tiles_plan.py)."""
 
 from __future__ import annotations
 
