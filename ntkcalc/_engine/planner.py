@@ -4,7 +4,9 @@
 and analyses which layer consumes each parameter; `choose` prices every method (`BY_METHOD`)
 with `cost` at a per-device budget and picks the cheapest whose tile fits. What only the whole
 request knows (the budget, the result's reservation, a store, the devices) is the next stage's,
-`_tiles/plan.py`: this module knows nothing of stores or devices.
+`_tiles/plan.py`: this module knows nothing of stores or devices. That stage reads a request
+through `sides` and prices it through `context`, `candidates` and `choose`, never through the
+context's fields.
 """
 
 from __future__ import annotations
@@ -153,6 +155,22 @@ def _blocks(n1: int, n2: int, peak, budget: int) -> int | None:
             nb = math.ceil(n / b)
             return math.ceil(n / nb)
     return None
+
+
+@dataclasses.dataclass(frozen=True)
+class Sides:
+    """The kernel's sides, what the request planner (`_tiles/plan.py`) reads of a request:
+    n1 examples of x1 (rows), n2 of x2 (columns; n1 for K(X, X)), symmetric: K(X, X)."""
+
+    n1: int
+    n2: int
+    symmetric: bool
+
+
+def sides(req: Request) -> Sides:
+    """The `Sides` of ``req``'s kernel: K(x1, x2), or K(x1, x1) when x2 is None."""
+    n1 = req.x1.shape[0]
+    return Sides(n1, n1 if req.x2 is None else req.x2.shape[0], req.x2 is None)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -380,9 +398,8 @@ BY_METHOD = {name: Method(name, STEPS[name], price) for name, price in (
 def context(req: Request, outputs: str) -> _Context:
     """What every method's pricing reads from ``req`` in mode ``outputs``: sizes, the traced
     per-example function (`traced`) and its structured analysis."""
-    n1 = req.x1.shape[0]
-    n2 = n1 if req.x2 is None else req.x2.shape[0]
-    sym = req.x2 is None
+    side = sides(req)
+    n1, n2, sym = side.n1, side.n2, side.symmetric
     o = req.num_outputs
     sel = req.selection
     names = [sel.names[i] for i in sel.indices]

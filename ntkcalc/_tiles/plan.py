@@ -26,6 +26,7 @@ from .._engine.planner import (
     choose,
     context,
     prepare,
+    sides,
     trace_key,
 )
 from .._engine.program import Program
@@ -193,8 +194,8 @@ def plan(net, x1, x2=None, *, outputs="trace", memory=None, method="auto",
 
 def result_bytes(req: Request, outputs: str) -> int:
     """Bytes of the in-memory result: groups × the kernel's elements × itemsize."""
-    shape = tile_shape(outputs, req.x1.shape[0],
-                       (req.x1 if req.x2 is None else req.x2).shape[0], req.num_outputs)
+    side = sides(req)
+    shape = tile_shape(outputs, side.n1, side.n2, req.num_outputs)
     return len(req.selection.group_names) * math.prod(shape) * C.itemsize(req.dtype)
 
 
@@ -257,6 +258,7 @@ def _plan_request(req: Request, *, outputs: str, memory, budget: int, method: st
     or on one device when that is too small.
     """
     devs = devices
+    side = sides(req)
     ctx = context(req, outputs)
     want = method
     if stored is not None and method == "auto" and stored.get("method") in BY_METHOD:
@@ -280,7 +282,7 @@ def _plan_request(req: Request, *, outputs: str, memory, budget: int, method: st
             continue
 
         def build(best, use=use, per_device=per_device, estimates=estimates):
-            return Plan(best.method, outputs, ctx.shape.n1, ctx.shape.n2, ctx.shape.symmetric,
+            return Plan(best.method, outputs, side.n1, side.n2, side.symmetric,
                         req.num_outputs, req.dtype, best.block, best.cache, best.rows,
                         best.flops, best.peak, best.seconds, estimates, budget, rates,
                         best.program, req.selection.group_names, tuple(use), reserved,
