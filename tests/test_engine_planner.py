@@ -14,6 +14,7 @@ import json
 
 import numpy as np
 import pytest
+from helpers import FIXED_RATES as FIXED
 from helpers import ZOO, assert_close, reduce_mode, reference_full
 
 import ntkcalc
@@ -23,10 +24,6 @@ from ntkcalc._engine import rates as R
 from ntkcalc._engine.planner import plan_request, prepare, result_bytes
 from ntkcalc._tiles import drive, run
 
-# Pinned rates (values of the order of a laptop CPU; invented, not measured).
-FIXED = R.Rates(matmul=5e10, stream=5e9, formation=((1, 1e9), (16, 1e10), (512, 4e10)),
-                call=2e-5, accumulation=3e9, platform="cpu", device_kind="cpu",
-                dtype="float64")
 N = 40
 
 
