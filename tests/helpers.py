@@ -19,6 +19,11 @@ from flax import nnx
 import ntkcalc
 
 RTOL = 1e-10  # float64 kernels against the dense reference
+# Pinned planner rates, for plans that must not depend on the machine (values of the order of a
+# laptop CPU; invented, not measured).
+FIXED_RATES = ntkcalc.Rates(
+    matmul=5e10, stream=5e9, formation=((1, 1e9), (16, 1e10), (512, 4e10)), call=2e-5,
+    accumulation=3e9, platform="cpu", device_kind="cpu", dtype="float64")
 
 
 def reference_full(net: ntkcalc.Net, x1, x2=None, *, params=None, jit=False) -> np.ndarray:

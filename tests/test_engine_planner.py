@@ -11,8 +11,8 @@ import functools
 
 import numpy as np
 import pytest
+from helpers import FIXED_RATES as FIXED
 from helpers import ZOO, reference_full
-from test_engine_rates import FIXED
 
 import ntkcalc
 from ntkcalc._engine.planner import prepare

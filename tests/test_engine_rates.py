@@ -2,7 +2,8 @@
 process, measured again when damaged or stale, turned off; and the formation-rate lookup.
 
 The measurement itself is stubbed (`rates_file`): these tests check the file and the lookup, not
-the machine. `FIXED` are the pinned rates the planner tests share.
+the machine. `FIXED` (tests/helpers.py `FIXED_RATES`) are the pinned rates the planner tests
+share.
 """
 
 from __future__ import annotations
@@ -11,13 +12,9 @@ import dataclasses
 import json
 
 import pytest
+from helpers import FIXED_RATES as FIXED
 
 from ntkcalc._engine import rates as R
-
-# Pinned rates (values of the order of a laptop CPU; invented, not measured).
-FIXED = R.Rates(matmul=5e10, stream=5e9, formation=((1, 1e9), (16, 1e10), (512, 4e10)),
-                call=2e-5, accumulation=3e9, platform="cpu", device_kind="cpu",
-                dtype="float64")
 
 
 @pytest.fixture

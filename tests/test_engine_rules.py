@@ -69,6 +69,20 @@ def test_dot_sizes_and_flops():
     assert ub.rule.bias_shape(ub) is None  # only a rhs weight without batch dims carries one
 
 
+def test_bias_folds_through_a_broadcast_that_only_inserts_unit_dims():
+    # y = x W + b with b (5,) broadcast to (1, 5) keeps every entry of b once: it folds into W's
+    # factors. Broadcast to more entries (a (1, 1) bias shared by all 5 outputs), its inner
+    # products change, so it stays a leaf of its own (common practice: a replicated entry's
+    # derivative is the sum over its copies).
+    x, w = jnp.ones((1, 4)), jnp.ones((4, 5))
+    an = _uses(lambda w, b, x: x @ w + lax.broadcast_in_dim(b, (1, 5), (1,)), w, jnp.ones(5), x,
+               num_diff=2)
+    assert an.uses[1][0].permuting and an.bias_of == (1, None)
+    shared = _uses(lambda w, b, x: x @ w + jnp.broadcast_to(b, (1, 5)), w, jnp.ones((1, 1)), x,
+                   num_diff=2)
+    assert not shared.uses[1][0].permuting and shared.bias_of == (None, None)
+
+
 def test_conv_sizes_and_flops():
     x = jnp.ones((1, 6, 6, 2))
     u = _only_use(lambda w, x: _conv(x, w), jnp.ones((3, 3, 2, 4)), x)  # output (1, 4, 4, 4)
@@ -77,6 +91,12 @@ def test_conv_sizes_and_flops():
     ug = _only_use(lambda w, x: _conv(x, w, 2), jnp.ones((3, 3, 1, 4)), x)
     assert ug.rule.step_sizes(ug) == (2, 16, 9, 2)  # groups are batch dims
     assert ug.rule.local_flops(ug) == 2 * 64 * 9
+    # A bias folds as one more patch entry: ones but the output features, in either layout.
+    assert u.rule.bias_shape(u) == (1, 1, 1, 4) and ug.rule.bias_shape(ug) == (1, 1, 1, 4)
+    un = _only_use(lambda w, x: lax.conv_general_dilated(
+        x, w, (1, 1), "VALID", dimension_numbers=("NCHW", "OIHW", "NCHW")),
+        jnp.ones((4, 2, 3, 3)), jnp.ones((1, 2, 6, 6)))
+    assert un.rule.bias_shape(un) == (1, 4, 1, 1)
     # The kernel as the lhs (an image-shaped parameter) has no conv rule: it falls back.
     an = _uses(lambda x, w: _conv(x, w), x, jnp.ones((3, 3, 2, 4)))
     assert an.rule(0) == "fallback" and an.uses[0] == ()

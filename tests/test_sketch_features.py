@@ -14,6 +14,7 @@ from __future__ import annotations
 import functools
 
 import jax
+import jax.numpy as jnp
 import numpy as np
 import pytest
 
@@ -29,6 +30,21 @@ def mlp_case():
     module = MLP(width=6, out=3)
     net = ntkcalc.Net.from_linen(module, f64(module.init(jax.random.key(0), x[:1])))
     return net, x
+
+
+@functools.cache
+def plain_mlp_case():
+    """`mlp_case`'s network and parameters in plain JAX, ``x @ w + b``: numpy broadcasting lowers
+    each bias to broadcast_in_dim (R,) → (1, R) before the add (rank promotion allowed here)."""
+    net, x = mlp_case()
+
+    def apply(p, xx):
+        with jax.numpy_rank_promotion("allow"):
+            h = jax.nn.relu(xx @ p["Dense_0"]["kernel"] + p["Dense_0"]["bias"])
+            h = jnp.tanh(h @ p["Dense_1"]["kernel"] + p["Dense_1"]["bias"])
+            return h @ p["Dense_2"]["kernel"] + p["Dense_2"]["bias"]
+
+    return ntkcalc.Net(apply, net.params), x
 
 
 def samples(f: ntkcalc.Features, rows: int) -> np.ndarray:
@@ -100,9 +116,16 @@ def mlp_blocks(net, x, outputs):
     return per_row
 
 
-@pytest.mark.parametrize("outputs", ["trace", "full", "logit-sum"])
-def test_structured_mean_and_variance_match_formula(outputs):
-    net, x = mlp_case()
+@pytest.mark.parametrize(("case", "outputs"), [("linen", "trace"), ("linen", "full"),
+                                               ("linen", "logit-sum"), ("plain", "trace")])
+def test_structured_mean_and_variance_match_formula(case, outputs):
+    # The formula's blocks are each layer's [W; b]: a bias projected with its layer's factors
+    # (folded), also when plain JAX broadcasts it into the add (then the plan says so).
+    net, x = mlp_case() if case == "linen" else plain_mlp_case()
+    if case == "plain":
+        plan = ntkcalc.plan_features(net, x, k=K_BIG, outputs=outputs)
+        assert {leaf.name: leaf.projected for leaf in plan.leaves if leaf.name.endswith("bias")
+                } == {f"Dense_{i}.bias": "folded" for i in range(3)}
     f = ntkcalc.ntk_features(net, x, k=K_BIG, outputs=outputs, seed=3, progress=False)
     want = rows_kernel(net, x, outputs)
     blocks = mlp_blocks(net, x, outputs)

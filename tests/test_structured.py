@@ -13,7 +13,9 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
-from helpers import ZOO, assert_close, f64, reduce_mode, reference_full
+from flax import nnx
+from helpers import FIXED_RATES, MLP, ZOO, _nnx64, assert_close, f64, reduce_mode, reference_full
+from jax import lax
 
 import ntkcalc
 
@@ -264,6 +266,112 @@ def test_structured_matches_dense_reference(models, name, outputs):
     want12 = reduce_mode(reference_full(net, x[:half], x[half:]), outputs)
     assert_close(ntkcalc.ntk(net, x[:half], x[half:], method="structured", outputs=outputs),
                  want12)
+
+
+# -- biases that reach their layer's output through a broadcast fold ---------------------------
+
+
+def _mlp_apply(add_bias):
+    """A tanh MLP 4-5-2 whose layers add their bias as ``add_bias(x @ w, b)``."""
+
+    def apply(p, x):
+        x = jnp.tanh(add_bias(x @ p["w0"], p["b0"]))
+        return add_bias(jnp.dot(x, p["w1"]), p["b1"])
+
+    return apply
+
+
+def _implicit(y, b):
+    """Plain JAX ``y + b``: numpy broadcasting, lowered to broadcast_in_dim(b) (R,) → (1, …, R)
+    and an add (the suite's rank-promotion guard lifted for this form only)."""
+    with jax.numpy_rank_promotion("allow"):
+        return y + b
+
+
+def _mlp_net(add_bias):
+    r = np.random.default_rng(2)
+    return ntkcalc.Net(_mlp_apply(add_bias), {
+        "w0": r.normal(size=(4, 5)) / 2, "b0": r.normal(size=(5,)),
+        "w1": r.normal(size=(5, 2)) / 2, "b1": r.normal(size=(2,))})
+
+
+def lax_conv_apply(p, x):
+    """lax.conv_general_dilated + b (broadcast by numpy rules), then a depthwise conv whose bias
+    is reshaped to (1, 1, 1, C)."""
+    dn = ("NHWC", "HWIO", "NHWC")
+    y = lax.conv_general_dilated(x, p["w"], (2, 1), "SAME", dimension_numbers=dn)
+    y = jnp.tanh(_implicit(y, p["b"]))
+    y = lax.conv_general_dilated(y, p["dw"], (1, 1), "VALID", dimension_numbers=dn,
+                                 feature_group_count=3)
+    y = y + p["db"].reshape(1, 1, 1, -1)
+    return y.reshape(y.shape[0], -1) @ p["v"]
+
+
+class ConvBias(nn.Module):
+    """flax nn.Conv (strided, then depthwise) with biases."""
+
+    @nn.compact
+    def __call__(self, x):
+        x = nn.tanh(nn.Conv(3, (3, 3), strides=(2, 1))(x))
+        x = nn.Conv(3, (2, 2), feature_group_count=3, padding="VALID")(x)
+        return nn.Dense(2, use_bias=False)(x.reshape(x.shape[0], -1))
+
+
+class LinearNNX(nnx.Module):
+    def __init__(self, rngs):
+        self.inp = nnx.Linear(4, 5, rngs=rngs)
+        self.out = nnx.Linear(5, 2, rngs=rngs)
+
+    def __call__(self, x):
+        return self.out(jnp.tanh(self.inp(x)))
+
+
+def _conv_net():
+    r = np.random.default_rng(4)
+    return ntkcalc.Net(lax_conv_apply, {
+        "w": r.normal(size=(3, 3, 2, 3)) / 3, "b": r.normal(size=(3,)),
+        "dw": r.normal(size=(2, 2, 1, 3)), "db": r.normal(size=(3,)),
+        "v": r.normal(size=(18, 2)) / 5})
+
+
+_VEC, _IMG = (3, 4), (3, 5, 4, 2)
+# name: (the net from example inputs, input shape, its bias leaves): one per way a bias reaches
+# its layer's output.
+BIAS_FORMS = {
+    "x @ w + b": (lambda x: _mlp_net(_implicit), _VEC, ("b0", "b1")),
+    "b[None, :]": (lambda x: _mlp_net(lambda y, b: y + b[None, :]), _VEC, ("b0", "b1")),
+    "b.reshape(1, -1)": (lambda x: _mlp_net(lambda y, b: y + b.reshape(1, -1)), _VEC,
+                         ("b0", "b1")),
+    "linen Dense": (lambda x: _linen(MLP(width=5, out=2), x), _VEC,
+                    ("Dense_0.bias", "Dense_1.bias", "Dense_2.bias")),
+    "nnx Linear": (lambda x: _nnx64(LinearNNX(nnx.Rngs(0))), _VEC, ("inp.bias", "out.bias")),
+    "linen Conv": (lambda x: _linen(ConvBias(), x), _IMG, ("Conv_0.bias", "Conv_1.bias")),
+    "lax conv + b": (lambda x: _conv_net(), _IMG, ("b", "db")),
+}
+
+
+@pytest.mark.parametrize("form", list(BIAS_FORMS))
+def test_broadcast_biases_fold_and_match_reference(form):
+    # A bias broadcast over the positions into a dense layer's or a conv's output is the layer's
+    # extra input 1 (Novak, Sohl-Dickstein & Schoenholz, ICML 2022, arXiv:2206.08720, factored
+    # derivatives; the bias as input 1: common practice): every plan (rates pinned, so the
+    # weights are factored or streamed on any machine) carries it folded, and each kernel
+    # equals the dense jax.jacrev reference.
+    make, shape, biases = BIAS_FORMS[form]
+    x = np.random.default_rng(9).normal(size=shape)
+    net = make(x)
+    want = reference_full(net, x)
+    for outputs in MODES:
+        p = ntkcalc.plan(net, x, method="structured", outputs=outputs, rates=FIXED_RATES)
+        reps = {leaf.name: leaf.representation for leaf in p.leaves}
+        assert {b: reps[b] for b in biases} == dict.fromkeys(biases, "folded"), reps
+        if outputs in ("full", "trace"):  # the fold is in the factors, before any contraction
+            k = ntkcalc.ntk(net, x, method="structured", outputs=outputs, plan=p,
+                            progress=False)
+            assert_close(k, reduce_mode(want, outputs))
+    assert_close(ntkcalc.ntk(net, x[:2], x[2:], method="structured", outputs="full",
+                             progress=False),
+                 reference_full(net, x[:2], x[2:]))
 
 
 def test_zoo_rules():

@@ -13,9 +13,9 @@ import functools
 
 import numpy as np
 import pytest
+from helpers import FIXED_RATES as FIXED
 from helpers import ZOO, assert_close, reduce_mode, reference_full
 from test_engine_planner import mlp
-from test_engine_rates import FIXED
 
 import ntkcalc
 from ntkcalc._engine import cost as C

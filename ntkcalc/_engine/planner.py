@@ -36,6 +36,7 @@ from .contract import STREAM_CHUNK_BYTES, stream_chunk
 from .options import METHODS, OUTPUTS, basis_size, check_choice, tile_shape
 from .program import STEPS, Program, Steps
 from .rates import Rates
+from .rules.bias import fold_candidates, settle_folds
 from .select import ParamFilter, select
 
 
@@ -520,11 +521,7 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
     n = len(names)
     kinds: list[str] = [""] * n
     rows: list[LeafCost | None] = [None] * n
-    folds: list[int | None] = [None] * n
-    for k in range(n):
-        j = analysis.bias_of[k] if analysis.bias_of else None
-        if j is not None and sel.groups[j] == sel.groups[k]:
-            folds[k] = j
+    folds = fold_candidates(analysis.bias_of, sel.groups)
     for k, (name, shape, p) in enumerate(zip(names, shapes, sizes, strict=True)):
         uses = analysis.uses[k]
         dense_pf = C.dense_pair_flops(a, p, outputs)
@@ -572,17 +569,14 @@ def _structured_rows(analysis, sel, names, shapes, sizes, a, isz, outputs, pairs
             if choice != "dense":
                 pf = fpf if choice == "factored" else costs["streamed"]
                 eb = (bsz * t * (rule.stored_inputs(c) + extra) + a * bsz * t * r) * isz
-        if choice == "dense":
-            folds[k] = None
         kinds[k] = choice
         rows[k] = LeafCost(name, shape, analysis.rule(k), choice, pairs * pf, eb)
-    folded = {j for j in folds if j is not None}
-    for j in folded:
-        kinds[j] = "folded"
-        w = folds.index(j)
-        rows[j] = LeafCost(names[j], shapes[j], analysis.rule(j), "folded", 0.0, 0.0,
-                           f"input 1 of {names[w]}'s factors")
-    return rows, kinds, tuple(folds)
+    folds, kinds = settle_folds(folds, kinds)
+    for w, j in enumerate(folds):
+        if j is not None:
+            rows[j] = LeafCost(names[j], shapes[j], analysis.rule(j), "folded", 0.0, 0.0,
+                               f"input 1 of {names[w]}'s factors")
+    return rows, list(kinds), folds
 
 
 def _use_local_flops(u: st.Use) -> float:

@@ -3,7 +3,10 @@ consumes it, without the network-wide Jacobian.
 
 The per-example function is traced to a jaxpr. For every differentiated leaf we find the
 primitive(s) that consume it, looking through structure-preserving ops applied to the leaf first
-(reshape, transpose, convert, squeeze, expand_dims, broadcast). A *probe*, an added zero, is placed
+(reshape, transpose, convert, squeeze, expand_dims, broadcast). A chain that keeps every entry
+once (a permutation, relabelling or negation, or a broadcast that only inserts unit dims, as
+``x @ w + b`` broadcasts b to (1, R)) preserves inner products, so a leaf behind it can still be
+factored or folded as a bias (`Use.permuting`). A *probe*, an added zero, is placed
 on the output y of each consuming primitive, and the primitive's other operands h are captured on
 the forward pass. One VJP per output direction then gives the cotangents g = ∂f_a/∂y of every probe
 at once, and the leaf's derivative follows from the consumer alone: a VJP of
@@ -51,7 +54,8 @@ PASS_THROUGH = frozenset(
     {"reshape", "transpose", "convert_element_type", "squeeze", "expand_dims",
      "broadcast_in_dim", "copy", "copy_p", "rev", "neg", "slice"}
 )
-# Pass-throughs that permute, relabel or negate entries: inner products survive them.
+# Pass-throughs that permute, relabel or negate entries: inner products survive them. A
+# broadcast_in_dim survives too when it only inserts unit dims (`_keeps_entries`).
 PERMUTING = PASS_THROUGH - {"broadcast_in_dim", "slice"}
 # Calls whose body is evaluated as written: jit, and rematerialization (jax.checkpoint,
 # nn.remat, nnx.remat), which only changes what is stored for the backward pass.
@@ -80,10 +84,9 @@ class Use:
     # same weight at every step), (length, "slice") where the scan slices a stacked leaf (one
     # layer per step). Operands and cotangents carry one leading axis per scan.
     scans: tuple[tuple[int, str], ...] = ()
-
-    @property
-    def permuting(self) -> bool:
-        return all(p.name in PERMUTING for p, _ in self.chain)
+    # Whether the chain keeps every entry of the leaf exactly once (permutes, relabels, negates
+    # or inserts unit dims: `_keeps_entries` of each step), so inner products survive it.
+    permuting: bool = True
 
     @property
     def steps(self) -> tuple[int, ...]:
@@ -114,6 +117,15 @@ class Analysis:
         names = sorted({u.rule.name for u in self.uses[leaf]})
         n = len(self.uses[leaf])
         return "+".join(names) + (f"×{n}" if n > 1 else "")
+
+
+def _keeps_entries(eqn) -> bool:
+    """Whether a pass-through keeps every entry of its operand exactly once: a permuting one, or
+    a broadcast_in_dim to as many elements as it reads (it only inserts unit dims: a reshape)."""
+    name = eqn.primitive.name
+    if name == "broadcast_in_dim":
+        return math.prod(eqn.outvars[0].aval.shape) == math.prod(eqn.invars[0].aval.shape)
+    return name in PERMUTING
 
 
 def _scan_operand(params, pos: int) -> str | None:
@@ -148,7 +160,7 @@ def analyze(closed, num_diff: int) -> Analysis:
             fallback[leaf] = why
 
     def walk(jaxpr, derived: dict, prefix: tuple[int, ...]):
-        # derived: var -> (leaf, chain, enclosing scans)
+        # derived: var -> (leaf, chain, enclosing scans, whether the chain keeps every entry)
         for i, eqn in enumerate(jaxpr.eqns):
             ins = [derived.get(v) if isinstance(v, jcore.Var) else None for v in eqn.invars]
             hits = [(k, d) for k, d in enumerate(ins) if d is not None]
@@ -157,18 +169,19 @@ def analyze(closed, num_diff: int) -> Analysis:
             name = eqn.primitive.name
             leaves = {d[0] for _, d in hits}
             if name in PASS_THROUGH and len(hits) == 1 and hits[0][0] == 0:
-                leaf, chain, scans = hits[0][1]
+                leaf, chain, scans, keeps = hits[0][1]
                 derived[eqn.outvars[0]] = (
-                    leaf, chain + ((eqn.primitive, dict(eqn.params)),), scans)
+                    leaf, chain + ((eqn.primitive, dict(eqn.params)),), scans,
+                    keeps and _keeps_entries(eqn))
                 continue
             rule = rules.rule_for(eqn, hits[0][0]) if len(hits) == 1 else None
             if rule is not None:
-                k, (leaf, chain, scans) = hits[0]
+                k, (leaf, chain, scans, keeps) = hits[0]
                 touched[leaf] = True
                 uses[leaf].append(
                     Use(leaf, prefix + (i,), k, chain, rule, eqn.primitive,
                         dict(eqn.params), tuple(v.aval for v in eqn.invars), eqn.outvars[0].aval,
-                        tuple(eqn.invars), eqn.outvars[0], scans)
+                        tuple(eqn.invars), eqn.outvars[0], scans, keeps)
                 )
                 continue
             sub = _sub_jaxpr(eqn) if name in CALLS or name == "scan" else None
@@ -187,7 +200,8 @@ def analyze(closed, num_diff: int) -> Analysis:
                         if kind is None:
                             fail(d[0], "parameter is a `scan` carry")
                         else:
-                            inner[v_in] = (d[0], (), d[2] + ((eqn.params["length"], kind),))
+                            inner[v_in] = (d[0], (), d[2] + ((eqn.params["length"], kind),),
+                                           True)
                 walk(sub.jaxpr, inner, prefix + (i,))
                 for v_out in sub.jaxpr.outvars:
                     if isinstance(v_out, jcore.Var) and v_out in inner:
@@ -205,8 +219,8 @@ def analyze(closed, num_diff: int) -> Analysis:
             if isinstance(v, jcore.Var) and v in derived:
                 fail(derived[v][0], "parameter is an output")
 
-    walk(closed.jaxpr, {v: (k, (), ()) for k, v in enumerate(closed.jaxpr.invars[:num_diff])},
-         ())
+    walk(closed.jaxpr,
+         {v: (k, (), (), True) for k, v in enumerate(closed.jaxpr.invars[:num_diff])}, ())
     final_uses = tuple(tuple(u) if fallback[k] is None else () for k, u in enumerate(uses))
     unused = tuple(not touched[k] for k in range(num_diff))
     return Analysis(closed, num_diff, final_uses, tuple(fallback), unused,

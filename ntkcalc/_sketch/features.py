@@ -34,6 +34,7 @@ from .._engine import structured as st
 from .._engine.options import check_choice
 from .._engine.planner import prepare, traced
 from .._engine.program import Program
+from .._engine.rules.bias import fold_candidates, settle_folds
 from .._engine.select import ParamFilter
 from .._tiles.blocking import block_bounds, padded
 from .._tiles.drive import check_store
@@ -134,27 +135,11 @@ def _sketch(req, *, k: int, outputs: str, method: str) -> tuple[Sketch, float, f
     base = Program(req.net.call, jax.tree_util.tree_structure(req.params), sel, prog_outputs,
                    req.num_outputs, "jacobian", ("dense",) * len(req.diff))
     fwd, acts, an = traced(req, base)
-    kinds = []
-    folds: list[int | None] = [None] * len(req.diff)
-    for leaf in range(len(req.diff)):
-        j = an.bias_of[leaf] if an.bias_of else None
-        if j is not None and sel.groups[j] == sel.groups[leaf]:
-            folds[leaf] = j
-    folded = {j for j in folds if j is not None}
-    for leaf in range(len(req.diff)):
-        if an.unused[leaf]:
-            kinds.append("unused")
-        elif leaf in folded:
-            kinds.append("folded")
-        elif an.uses[leaf] and st.factorable(an.uses[leaf]):
-            kinds.append("factored")
-        else:
-            kinds.append("dense")
-    for w, j in enumerate(folds):
-        if j is not None and kinds[w] != "factored":
-            folds[w] = None
-    prog = dataclasses.replace(base, method="structured", kinds=tuple(kinds), analysis=an,
-                               folds=tuple(folds))
+    kinds = ["unused" if an.unused[leaf] else "factored"
+             if an.uses[leaf] and st.factorable(an.uses[leaf]) else "dense"
+             for leaf in range(len(req.diff))]
+    folds, kinds = settle_folds(fold_candidates(an.bias_of, sel.groups), kinds)
+    prog = dataclasses.replace(base, method="structured", kinds=kinds, analysis=an, folds=folds)
     sketch = Sketch(prog, k, outputs != "full", method, tuple(sel.indices),
                     tuple(tuple(np.shape(d)) for d in req.diff))
     return sketch, acts, fwd

@@ -4,7 +4,8 @@ padding, dilation, feature groups; not batch groups).
 ``y[n, s, (grp, o)] = Σ_{c,k} P[n, s, (grp, c), k] W[(c, k), (grp, o)]`` with P the image
 patches, so the derivative factors as (patches, g) with positions T = (n, s), the feature groups
 as batch dims B and C = (input channels per group) × window (Novak, Sohl-Dickstein & Schoenholz,
-ICML 2022, arXiv:2206.08720: convolutions as dense layers over patches).
+ICML 2022, arXiv:2206.08720: convolutions as dense layers over patches). A bias added to the
+output folds as one more patch entry, the constant 1 (`bias.fold_biases`).
 """
 
 from __future__ import annotations
@@ -62,6 +63,13 @@ class Conv(Rule):
         gm = jnp.moveaxis(cot, 1 + feat, -1)  # (A, ..., Cout)
         gm = gm.reshape(a, -1, groups, gm.shape[-1] // groups)  # (A, T, G, R)
         return jnp.transpose(pm, (1, 0, 2)), jnp.transpose(gm, (0, 2, 1, 3))
+
+    def bias_shape(self, use) -> tuple[int, ...] | None:
+        """y = conv(x, W) + b with b broadcast over the batch and spatial dims: ones but the
+        output features. A bias is the conv's extra input 1 at every position (each patch
+        gains a constant 1), per feature group: output feature (grp, o) is group grp's o."""
+        feat = use.params["dimension_numbers"].out_spec[1]
+        return tuple(n if d == feat else 1 for d, n in enumerate(use.out_aval.shape))
 
 
 CONV = Conv()
