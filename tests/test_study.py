@@ -457,6 +457,8 @@ def test_sketched_report_prints_every_number_with_its_error_bar(sketched, tmp_pa
                             steps=sk.steps)
     assert sk.laziness == want and sk.verdict == want.sentence
     assert sk.laziness.distance_error == s.distance[-1].error > 0 and "±" in sk.verdict
+    # the criterion it does not measure is named (the exact verdict has both)
+    assert sk.laziness.relative_change is None and _names_the_unmeasured_relative_change(sk)
     with open(html_path, encoding="utf-8") as fh:
         page = html.unescape(fh.read())
     with open(html_path.replace("report.html", "report.json"), encoding="utf-8") as fh:
@@ -474,7 +476,7 @@ def test_sketched_report_prints_every_number_with_its_error_bar(sketched, tmp_pa
             assert "MSE" in label and value.count("±") == 3, (label, value)
     for c in s.checkpoints:  # a cluster of eigenvalues the sketch does not resolve is named
         row = dict(rows)[f"step {c.step}: top eigenvalues of the trace kernel (bias-corrected)"]
-        assert ("a cluster the sketch does not resolve" in row) == any(
+        assert ("the sketch does not resolve" in row) == any(
             a <= 5 for a, _ in clusters(c.eigenvalues))
     # a threshold at the estimate itself: within its error bars, so not resolved, and the
     # report says so (not "Not lazy")
@@ -491,6 +493,12 @@ def test_sketched_report_prints_every_number_with_its_error_bar(sketched, tmp_pa
     assert any(c.startswith("Laziness not resolved — the verdict: not resolved: ")
                for c in cautions)
     assert not any(c.startswith("Not lazy") for c in cautions)
+
+
+def _names_the_unmeasured_relative_change(sk) -> bool:
+    """The sketched run's cautions say the relative change is not estimated from features."""
+    return any(c.startswith("The kernel's relative change ‖K_t − K_0‖/‖K_0‖ is not estimated")
+               for c in sk.cautions)
 
 
 def test_clusters_of_sketched_eigenvalues():

@@ -195,7 +195,7 @@ class Laziness(Result):
         an estimate lies within its error bars of the threshold): the verdict in words."""
         if self.lazy:
             return "lazy"
-        return "not lazy" if self.failed else "not resolved"
+        return "not resolved" if self.unresolved and not self.failed else "not lazy"
 
     def to_dict(self) -> dict:
         """Every number and the sentence as plain Python values (for JSON), with ``outcome``."""

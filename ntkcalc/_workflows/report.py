@@ -507,6 +507,7 @@ def _pm(u) -> str:
 def _top_eigenvalues(c, shown: int = 5) -> str:
     """The top ``shown`` bias-corrected eigenvalues with their error bars, and the runs of them
     the sketch does not tell apart (`clusters`): their sum is estimated, single values are not."""
+    from .._analysis.laziness import RESOLVE_BARS
     from .._sketch.analysis import clusters
 
     u = c.eigenvalues
@@ -514,10 +515,12 @@ def _top_eigenvalues(c, shown: int = 5) -> str:
         np.asarray(u.corrected)[:shown], np.asarray(u.error)[:shown], strict=True))
     runs = [(a, b) for a, b in clusters(u) if a <= shown]
     if runs:
-        text += ("; ranks " + ", ".join(f"{a}–{b}" for a, b in runs)
-                 + " lie within 2 error bars of their neighbours: a cluster the sketch does not "
-                 "resolve (read its sum; single values may be off by several error bars and out "
-                 "of order; refine_spectrum gives exact ones)")
+        one = len(runs) == 1
+        text += ("; ranks " + " and ".join(f"{a}–{b}" for a, b in runs)
+                 + f" lie within {RESOLVE_BARS:g} error bars of their neighbours: "
+                 + ("a cluster" if one else "clusters") + " the sketch does not resolve (read "
+                 + ("its" if one else "each one's") + " sum; single values may be off by several "
+                 "error bars and out of order; refine_spectrum gives exact ones)")
     return text
 
 
@@ -540,8 +543,9 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         f"{a.dtype}); checkpoints at steps "
         f"{', '.join(map(str, steps))}.",
         f"Kernel: sketched NTK features, k = {sk.k} per example (not the exact kernel): "
-        f"{a.choice.reason}. Numbers are estimates ± one jackknife standard error.",
-        f"Laziness verdict (on the bias-corrected sketched kernel distance): {a.verdict}.",
+        f"{a.choice.reason}. Its numbers are estimates ± one jackknife standard error.",
+        f"Laziness verdict (on the bias-corrected sketched kernel distance alone; the relative "
+        f"change is not estimated): {a.verdict}.",
         f"Label alignment {_pm(sk.alignment[0])} → {_pm(sk.alignment[-1])}; kernel distance "
         f"to step {steps[0]} at step {steps[-1]}: {_pm(sk.distance[-1])}.",
         f"Kernel ridge at step {last.step}, ridge {last.ridge:.3g} chosen by GCV: GCV "

@@ -298,6 +298,13 @@ class SketchedAnswers(Result):
         })
 
 
+#: What the sketched verdict does not measure (the exact path's second kernel criterion).
+SKETCH_SCALE_NOTE = (
+    "The kernel's relative change ‖K_t − K_0‖/‖K_0‖ is not estimated from the features: the "
+    "sketched verdict rests on the distance alone, which does not see a kernel that only grows "
+    "or shrinks; run kernel='exact' on a subset of the examples (x_train[:n]) for it.")
+
+
 def _uncertain(u: Uncertain) -> dict:
     return {"value": u.value, "error": u.error, "bias": u.bias, "corrected": u.corrected,
             "groups": u.groups}
@@ -776,6 +783,7 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, st
              f"bias-corrected sketched kernel distance and its error bar, and is \"not "
              f"resolved\" where that distance lies within {verdict.bars:g} error bars of the "
              f"threshold.",
+             SKETCH_SCALE_NOTE,
              *refused]
     if dtype == "float32":
         notes.append(FLOAT32_NOTE)
