@@ -196,7 +196,7 @@ def test_verdict_from_curves_names_the_first_failing_step():
     # the kind and precision of the kernels compared are carried and shown
     v = laziness(relative_change=0.01, kind="trace", precision=np.float32)
     assert (v.kind, v.precision) == ("trace", "float32")
-    assert repr(v).endswith("kind='trace', precision='float32')")
+    assert "kind='trace', precision='float32'" in repr(v)
     assert laziness(distance=0.01).kind is None and laziness(distance=0.01).precision is None
     with pytest.raises(ValueError, match="`kind`='exact' is not known"):
         laziness(distance=0.1, kind="exact")
@@ -208,3 +208,46 @@ def test_verdict_from_curves_names_the_first_failing_step():
         laziness(forecast_gap=[0.1, 0.2], gap_steps=[0, 1, 2])
     with pytest.raises(ValueError, match="at least 2 kernels"):
         init_spread([np.eye(3)])
+
+
+def test_estimates_decide_only_two_error_bars_clear_of_the_threshold():
+    # A criterion given with standard errors σ (sketched features) passes below threshold − 2σ,
+    # fails above threshold + 2σ, and is otherwise "not resolved" (neither lazy nor not lazy);
+    # the sentence prints each estimate with its error bar. Two σ: our choice (module docstring).
+    steps = [0, 10, 20]
+    near_zero = laziness(distance=[0.0, 2.0e-5, 4.2e-5], distance_error=[0.0, 7.5e-5, 1.1e-4],
+                         steps=steps)
+    assert near_zero.lazy and near_zero.outcome == "lazy" and near_zero.unresolved == ()
+    assert near_zero.distance == 4.2e-5 and near_zero.distance_error == 1.1e-4
+    assert "up to 0.004% ± 0.011%" in near_zero.sentence  # to the error's 2nd digit
+    assert "within 2 standard errors of 0 at every step: no change resolved" in near_zero.sentence
+    # an estimate below 0 (noise) is accepted with its error bar, and printed as it is
+    below = laziness(distance=[0.0, -3.0e-5], distance_error=[0.0, 1.0e-4])
+    assert below.lazy and "up to -0.003% ± 0.010%" in below.sentence
+    # within 2σ of the threshold: not resolved, whichever side of it the estimate is
+    for value in (0.046, 0.054):
+        v = laziness(distance=[0.0, value], distance_error=[0.0, 0.003], steps=[0, 5])
+        assert not v.lazy and v.outcome == "not resolved" and v.failed == ()
+        assert v.unresolved == ("distance",) and v.first_step is None
+        assert v.sentence.startswith("not resolved: ") and "cannot tell" in v.sentence
+        assert f"up to {value:.2%} ± 0.30%" in v.sentence
+        assert v.to_dict()["outcome"] == "not resolved"
+    # clear of it by more than 2σ: decided, the failing step named
+    v = laziness(distance=[0.0, 0.049, 0.07], distance_error=[0.0, 0.003, 0.009], steps=steps)
+    assert v.outcome == "not lazy" and v.failed == ("distance",) and v.first_step == 20
+    assert v.sentence.startswith("not lazy (from step 20)")
+    # the printed step is the one that decides: the widest interval, not the largest estimate
+    v = laziness(distance=[0.0, 0.03, 0.028], distance_error=[0.0, 0.001, 0.02], steps=steps)
+    assert v.outcome == "not resolved" and (v.distance, v.distance_error) == (0.028, 0.02)
+    # a tiny threshold inside the interval around 0: not resolved either
+    v = laziness(distance=[0.0, 3e-5], distance_error=[0.0, 2e-5], kernel_threshold=1e-5)
+    assert v.outcome == "not resolved" and "threshold 0.001%" in v.sentence
+    # without error bars nothing changes: no interval, the old verdict and wording
+    v = laziness(distance=[0.0, 0.049])
+    assert v.lazy and v.distance_error is None and "±" not in v.sentence
+    with pytest.raises(ValueError, match="`distance` must be a non-negative number"):
+        laziness(distance=[0.0, -1e-5])
+    with pytest.raises(ValueError, match="`distance_error` must be finite standard errors"):
+        laziness(distance=[0.0, 0.01], distance_error=[0.0])
+    with pytest.raises(ValueError, match="`relative_change_error` was given without"):
+        laziness(distance=0.01, relative_change_error=0.001)

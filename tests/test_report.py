@@ -395,3 +395,72 @@ def test_sketched_estimates_print_bias_corrected_where_the_bias_exceeds_the_erro
     assert _pm(far) == "4.5e-05 ± 0.00011 (bias-corrected from -0.000274)"
     near = ntkcalc.Uncertain(0.659, 0.014, 0.003, 8)
     assert _pm(near) == "0.659 ± 0.014"
+
+
+def _rewrite_record(path, change) -> None:
+    """Rewrite a saved result.npz with ``change`` applied to its record (the JSON header)."""
+    with np.load(path, allow_pickle=False) as data:
+        arrays = {k: data[k] for k in data.files}
+    record = change(json.loads(str(arrays.pop("__record__"))))
+    np.savez(path, __record__=np.array(json.dumps(record)), **arrays)
+
+
+def _rename_field(tree, cls: str, old: str, new: str):
+    """The record tree with field ``old`` of every ``cls`` renamed ``new``, as a version whose
+    class had another field would have written it."""
+    if isinstance(tree, list):
+        return [_rename_field(v, cls, old, new) for v in tree]
+    if not isinstance(tree, dict):
+        return tree
+    tree = {k: _rename_field(v, cls, old, new) for k, v in tree.items()}
+    if tree.get("__type__", "").endswith(f":{cls}"):
+        tree["fields"] = {new if k == old else k: v for k, v in tree["fields"].items()}
+    return tree
+
+
+def test_a_record_of_another_version_is_refused_as_such(run, tmp_path):
+    # A result saved by a version whose classes had other fields is refused saying so and what
+    # to do (re-run), never called damaged; the record names the version that wrote it.
+    analysis = run[0]
+    analysis.write(tmp_path / "run", description=DESCRIPTION)
+    record = tmp_path / "run" / "result.npz"
+    with np.load(record, allow_pickle=False) as data:
+        header = json.loads(str(data["__record__"]))
+    assert header["format"] == 1 and header["ntkcalc"] == ntkcalc.__version__
+    # as the version before records named their version wrote it: no header; its Laziness had
+    # a field this one lacks in place of one it requires
+    _rewrite_record(record, lambda r: _rename_field(r["tree"], "Laziness", "lazy", "is_lazy"))
+    with pytest.raises(ValueError) as err:
+        ntkcalc.RunAnalysis.read(tmp_path / "run")
+    message = str(err.value)
+    assert "damaged" not in message
+    assert "saved by another version of ntkcalc" in message
+    assert "an earlier ntkcalc, one that did not record its version" in message
+    assert ("its Laziness has fields is_lazy that this version's lacks; no fields lazy, which "
+            "this version's requires") in message
+    assert "Re-run the analysis (`analyse_run`, then `write`)" in message
+    assert "its numbers are still in" in message and "result.json" in message
+    # a record naming its version, with a class this version does not have
+    analysis.write(tmp_path / "run", description=DESCRIPTION)
+
+    def renamed(r):
+        text = json.dumps(r).replace("ntkcalc._analysis.laziness:Laziness",
+                                     "ntkcalc._analysis.laziness:LazinessV0")
+        return {**json.loads(text), "ntkcalc": "0.0.9"}
+
+    _rewrite_record(record, renamed)
+    with pytest.raises(ValueError, match=r"written by ntkcalc 0\.0\.9; this is ntkcalc .*its "
+                       r"result class ntkcalc\._analysis\.laziness:LazinessV0 is not in this "
+                       r"version\)\. Re-run the analysis"):
+        write_report(tmp_path / "run")
+    # another record layout
+    analysis.write(tmp_path / "run", description=DESCRIPTION)
+    _rewrite_record(record, lambda r: {**r, "format": 2})
+    with pytest.raises(ValueError, match="its record layout is format 2, this version reads "
+                                         r"format 1\)\. Re-run"):
+        ntkcalc.RunAnalysis.read(tmp_path / "run")
+    # what is not a record of any version is still called damaged
+    analysis.write(tmp_path / "run", description=DESCRIPTION)
+    _rewrite_record(record, lambda r: {**r, "tree": {"__array__": "missing", "scalar": True}})
+    with pytest.raises(ValueError, match="result.npz' is damaged"):
+        ntkcalc.RunAnalysis.read(tmp_path / "run")

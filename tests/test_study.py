@@ -22,6 +22,7 @@ An nnx model saved with orbax and loaded through a factory is checked on scikit-
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import json
 import re
@@ -435,6 +436,83 @@ def test_sketched_run_refuses_exact_only_answers_and_reports_the_kernel(sketched
     assert len(doc["sketched"]["alignment"]) == len(SAVED)
     assert all(r is not None for r in sk.feature_ranks)  # no kernel needed
     sk.plot()  # a figure of the sketched answers with error bars
+
+
+def test_sketched_report_prints_every_number_with_its_error_bar(sketched, tmp_path):
+    """Every decimal number the sketched report shows is in its report.json (up to the rounding
+    it is shown with), every sketched estimate in a row or the summary is followed by its error
+    bar, error rows name the MSE convention, and the verdict is the one `laziness` gives the
+    bias-corrected distances with their jackknife errors (not a distance clipped at 0)."""
+    import html
+
+    from test_report import _shown_numbers, numbers_in
+
+    from ntkcalc._sketch.analysis import clusters
+    from ntkcalc._workflows.report import write_report
+
+    _, sk, html_path = sketched
+    s = sk.sketched
+    want = ntkcalc.laziness(distance=[0.0] + [d.corrected for d in s.distance[1:]],
+                            distance_error=[0.0] + [d.error for d in s.distance[1:]],
+                            steps=sk.steps)
+    assert sk.laziness == want and sk.verdict == want.sentence
+    assert sk.laziness.distance_error == s.distance[-1].error > 0 and "±" in sk.verdict
+    # the criterion it does not measure is named (the exact verdict has both)
+    assert sk.laziness.relative_change is None and _names_the_unmeasured_relative_change(sk)
+    with open(html_path, encoding="utf-8") as fh:
+        page = html.unescape(fh.read())
+    with open(html_path.replace("report.html", "report.json"), encoding="utf-8") as fh:
+        doc = json.load(fh)
+    assert doc["verdict"]["distance_error"] == sk.laziness.distance_error
+    known = list(numbers_in(doc))
+    rows = re.findall(r'<tr><th>([^<]*)</th><td class="num">([^<]*)</td></tr>', page)
+    for cell in [v for _, v in rows] + doc["summary"] + doc["cautions"]:
+        for value, step in _shown_numbers(cell):
+            assert any(abs(v - value) <= 0.51 * step + 1e-12 for v in known), (cell, value)
+    for label, value in rows:
+        if "distance" in label or "alignment" in label or "eigenvalues" in label:
+            assert "±" in value, (label, value)
+        if "ridge" in label:
+            assert "MSE" in label and value.count("±") == 3, (label, value)
+    for c in s.checkpoints:  # a cluster of eigenvalues the sketch does not resolve is named
+        row = dict(rows)[f"step {c.step}: top eigenvalues of the trace kernel (bias-corrected)"]
+        assert ("the sketch does not resolve" in row) == any(
+            a <= 5 for a, _ in clusters(c.eigenvalues))
+    # a threshold at the estimate itself: within its error bars, so not resolved, and the
+    # report says so (not "Not lazy")
+    d = s.distance[-1]
+    open_verdict = ntkcalc.laziness(
+        distance=[0.0, d.corrected], distance_error=[0.0, d.error],
+        kernel_threshold=max(d.corrected, 1e-6))
+    assert open_verdict.outcome == "not resolved"
+    unresolved = dataclasses.replace(sk, laziness=open_verdict, lazy=False,
+                                     verdict=open_verdict.sentence)
+    _, json_path = write_report(unresolved, out=tmp_path)
+    with open(json_path, encoding="utf-8") as fh:
+        cautions = json.load(fh)["cautions"]
+    assert any(c.startswith("Laziness not resolved — the verdict: not resolved: ")
+               for c in cautions)
+    assert not any(c.startswith("Not lazy") for c in cautions)
+
+
+def _names_the_unmeasured_relative_change(sk) -> bool:
+    """The sketched run's cautions say the relative change is not estimated from features."""
+    return any(c.startswith("The kernel's relative change ‖K_t − K_0‖/‖K_0‖ is not estimated")
+               for c in sk.cautions)
+
+
+def test_clusters_of_sketched_eigenvalues():
+    # neighbours within 2 combined standard errors √(σ_i² + σ_j²) form a run (our rule, the
+    # verdict's two error bars); the numbers: the digits run of docs/own-run.md at k = 512
+    from ntkcalc._sketch.analysis import clusters
+
+    u = ntkcalc.Uncertain(np.array([8162.0, 603.6, 496.5, 527.7, 317.2]),
+                          np.array([960.0, 59.0, 26.0, 36.0, 26.0]), np.zeros(5), 8)
+    assert clusters(u) == ((2, 4),)
+    apart = ntkcalc.Uncertain(np.array([10.0, 5.0, 4.9, 1.0, 0.95]), np.full(5, 0.03),
+                              np.zeros(5), 8)
+    assert clusters(apart) == ((4, 5),)  # 0.1 apart is > 2·√2·0.03 = 0.085; 0.05 is not
+    assert clusters(dataclasses.replace(apart, error=np.full(5, 1e-3))) == ()
 
 
 def test_auto_takes_features_above_the_time_limit(run):

@@ -34,8 +34,20 @@ kernel criteria alone cannot decide: the forecast gap on outputs, the direct mea
 the linearization describes the run, decides; without it the run is not called lazy and the
 sentence says what to measure. Using the spread this way is our choice.
 
-The run is lazy when no measured criterion fails. `Laziness.sentence` says so in one line with
-the numbers; the same object feeds every place that states a verdict.
+**Estimates with error bars.** A kernel criterion may be an estimate rather than a computed value
+(sketched NTK features give the kernel distance with a jackknife standard error σ, Efron & Stein,
+Ann. Statist. 1981). It then decides only when it is clear of the threshold by `RESOLVE_BARS` (2)
+error bars: below ``threshold − 2σ`` at every step it passes, above ``threshold + 2σ`` at some step
+it fails, and otherwise the verdict is *not resolved* (`Laziness.outcome`), never lazy or not
+lazy: the estimates cannot tell, and smaller error bars (more sketched features, or the exact
+kernel) decide. An estimate within 2σ of 0 at every step is a change not resolved from none, and
+the sentence says so; the verdict is still lazy when the whole interval lies below the threshold.
+The estimate is printed as it is, with its error bar, even below 0 (an unbiased estimate of a
+small non-negative quantity can be). Two error bars (about 95% for a normal estimate; with the
+jackknife's 8 groups, a t distribution with 7 degrees of freedom, about 92%) is our choice.
+
+The run is lazy when no measured criterion fails and none is unresolved. `Laziness.sentence`
+says so in one line with the numbers; the same object feeds every place that states a verdict.
 """
 
 from __future__ import annotations
@@ -60,6 +72,8 @@ from .rank import precision_of
 KERNEL_THRESHOLD = 0.05
 #: Threshold on the forecast gap on outputs, relative to the initial residual (our choice).
 GAP_THRESHOLD = 0.10
+#: An estimate decides the verdict only this many standard errors clear of the threshold.
+RESOLVE_BARS = 2.0
 
 DIVERGED = (
     "The {what} diverged (non-finite values from step {step}): the forecast gap is inf. "
@@ -128,8 +142,8 @@ class Laziness(Result):
     """The laziness verdict with its criteria, thresholds and numbers.
 
     Fields:
-        lazy: no measured criterion failed.
-        sentence: one line saying so, with the numbers.
+        lazy: no measured criterion failed and none is unresolved.
+        sentence: one line saying so, with the numbers (and their error bars, where given).
         relative_change: the largest kernel relative change to the initial kernel, or None.
         distance: the largest kernel distance to the initial kernel, or None.
         forecast_gap: the largest forecast gap on training outputs relative to the initial
@@ -148,6 +162,12 @@ class Laziness(Result):
         precision: the dtype the kernels were computed in (``"float32"``, ``"float64"``), whose
             rounding limits how small a change can be told from zero; None when not given or no
             kernel was compared.
+        unresolved: the criteria given with error bars whose estimate lies within
+            ``bars`` error bars of the threshold (neither passed nor failed).
+        relative_change_error, distance_error: the standard error of the printed
+            ``relative_change`` and ``distance`` (the step that decides), or None when the
+            criterion was given without error bars.
+        bars: how many standard errors an estimate must clear the threshold by to decide.
     """
 
     lazy: bool
@@ -164,31 +184,57 @@ class Laziness(Result):
     within_spread: tuple[str, ...] = ()
     kind: str | None = None
     precision: str | None = None
+    unresolved: tuple[str, ...] = ()
+    relative_change_error: float | None = None
+    distance_error: float | None = None
+    bars: float = RESOLVE_BARS
+
+    @property
+    def outcome(self) -> str:
+        """``"lazy"``, ``"not lazy"`` (a criterion failed) or ``"not resolved"`` (none failed,
+        an estimate lies within its error bars of the threshold): the verdict in words."""
+        if self.lazy:
+            return "lazy"
+        return "not resolved" if self.unresolved and not self.failed else "not lazy"
 
     def to_dict(self) -> dict:
-        """Every number and the sentence as plain Python values (for JSON)."""
+        """Every number and the sentence as plain Python values (for JSON), with ``outcome``."""
         out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
+        out["outcome"] = self.outcome
         out["failed"] = list(self.failed)
+        out["unresolved"] = list(self.unresolved)
         out["within_spread"] = list(self.within_spread)
         out["spread"] = None if self.spread is None else dataclasses.asdict(self.spread)
         return out
 
 
-def _curve(name: str, values, steps):
+def _curve(name: str, values, steps, errors=None):
+    """(values, steps or None, standard errors) of one criterion; an estimate given with its
+    error bars may be below 0 (noise), a computed value may not."""
     if values is None:
+        if errors is not None:
+            raise ValueError(f"`{name}_error` was given without `{name}`: pass both.")
         return None
     arr = np.atleast_1d(np.asarray(values, dtype=np.float64))
-    if arr.ndim != 1 or arr.size == 0 or np.any(np.isnan(arr)) or np.any(arr < 0):
+    if arr.ndim != 1 or arr.size == 0 or np.any(np.isnan(arr)) or (
+            errors is None and np.any(arr < 0)):
         raise ValueError(
             f"`{name}` must be a non-negative number or 1-D array without NaN, got {values!r}."
         )
+    err = np.zeros_like(arr)
+    if errors is not None:
+        err = np.atleast_1d(np.asarray(errors, dtype=np.float64))
+        if err.shape != arr.shape or not np.all(np.isfinite(err)) or np.any(err < 0):
+            raise ValueError(
+                f"`{name}_error` must be finite standard errors >= 0, one per value of "
+                f"`{name}` ({counted(arr.size, 'value')}), got {errors!r}.")
     if steps is None:  # a single number has no step; a curve counts 0, 1, ...
-        return arr, None if np.ndim(values) == 0 else np.arange(arr.size)
+        return arr, None if np.ndim(values) == 0 else np.arange(arr.size), err
     at = np.asarray(steps)
     if at.shape != arr.shape:
         raise ValueError(f"`{name}` has {counted(arr.size, 'value')} but its steps have "
                          f"{at.size}.")
-    return arr, at
+    return arr, at, err
 
 
 def _threshold(name: str, value) -> float:
@@ -210,6 +256,8 @@ def laziness(
     gap_threshold: float = GAP_THRESHOLD,
     kind: Kind | None = None,
     precision=None,
+    relative_change_error=None,
+    distance_error=None,
 ) -> Laziness:
     """The laziness verdict from whichever criteria were measured (see the module docstring).
 
@@ -226,6 +274,10 @@ def laziness(
         kind: the kind of the kernels behind ``relative_change`` and ``distance`` (`KernelArray`'s
             ``kind``), recorded in the result.
         precision: the dtype those kernels were computed in (a dtype or its name), recorded.
+        relative_change_error, distance_error: when that criterion is an estimate (sketched
+            features), its standard error at each step, same shape (0 where exact); the
+            estimate may then be below 0, and it decides only `RESOLVE_BARS` standard errors
+            clear of the threshold (else the verdict is "not resolved").
 
     Returns:
         `Laziness`. At least one criterion must be given.
@@ -236,8 +288,9 @@ def laziness(
     precision = None if precision is None else precision_of(None, precision).name
     gt = _threshold("gap_threshold", gap_threshold)
     curves = {
-        "relative_change": _curve("relative_change", relative_change, steps),
-        "distance": _curve("distance", distance, steps),
+        "relative_change": _curve("relative_change", relative_change, steps,
+                                  relative_change_error),
+        "distance": _curve("distance", distance, steps, distance_error),
         "forecast_gap": _curve("forecast_gap", forecast_gap, gap_steps),
     }
     if all(c is None for c in curves.values()):
@@ -250,39 +303,54 @@ def laziness(
            "distance": spread.distance if spread else 0.0, "forecast_gap": 0.0}
     limits = {"relative_change": kt, "distance": kt, "forecast_gap": gt}
     gap_measured = curves["forecast_gap"] is not None
-    failed, within, first = [], [], None
+    failed, within, unresolved, first = [], [], [], None
+    at_peak = {}  # the step whose numbers the sentence prints: the one that decides
     for name, curve in curves.items():
         if curve is None:
             continue
-        values, at = curve
-        over = values > limits[name]
-        if not np.any(over):
+        values, at, err = curve
+        low, high = values - RESOLVE_BARS * err, values + RESOLVE_BARS * err
+        at_peak[name] = int(np.argmax(high))
+        if np.all(high <= limits[name]):
             continue
-        if np.any(values > max(limits[name], own[name])):
-            over = values > max(limits[name], own[name])
-        else:  # above the threshold, within the init spread: the forecast gap decides
-            within.append(name)
+        over = low > max(limits[name], own[name])
+        if not np.any(over):
+            over = low > limits[name]
+            if not np.any(over & (high <= own[name])):  # within its error bars of the threshold
+                unresolved.append(name)
+                continue
+            within.append(name)  # above the threshold, within the init spread: the gap decides
             if gap_measured:
                 continue
         failed.append(name)
+        at_peak[name] = int(np.argmax(low))
         if at is not None:
             s = int(at[int(np.argmax(over))])
             first = s if first is None else min(first, s)
-    peak = {name: None if c is None else float(np.max(c[0])) for name, c in curves.items()}
+    peak = {name: None if c is None else float(c[0][at_peak[name]]) for name, c in curves.items()}
+    error = {name: None if c is None or not np.any(c[2]) else float(c[2][at_peak[name]])
+             for name, c in curves.items()}
     kernel = [n for n in ("relative_change", "distance") if peak[n] is not None]
     beyond = None if spread is None or not kernel else any(
         peak[n] > max(kt, own[n]) for n in kernel)
+    zero = [n for n in kernel if error[n] is not None
+            and np.all(curves[n][0] - RESOLVE_BARS * curves[n][2] <= 0)]
     parts = []
     if kernel:
-        parts.append(_kernel_phrase(peak, kernel, kt, spread))
+        parts.append(_kernel_phrase(peak, error, kernel, kt, spread, zero))
     if gap_measured:
         parts.append(_gap_phrase(peak["forecast_gap"], gt))
-    lazy = not failed
-    head = "lazy" if lazy else "not lazy" + ("" if first is None else f" (from step {first})")
+    lazy = not failed and not unresolved
+    head = ("lazy" if lazy else "not resolved" if not failed
+            else "not lazy" + ("" if first is None else f" (from step {first})"))
     sentence = f"{head}: " + "; ".join(parts)
     if any(n in failed and n not in within for n in kernel):
         sentence += " — the kernel moved" + (
             " beyond what the initialization alone changes" if beyond else "")
+    elif unresolved and not failed:
+        sentence += (f" — within {RESOLVE_BARS:g} standard errors of the threshold: these "
+                     "estimates cannot tell; smaller error bars (more sketched features k, or "
+                     "the exact kernel) decide")
     elif within and lazy:
         sentence += (" — the kernel changed by more than the threshold but no more than between "
                      "independent initializations, and the outputs follow the forecast")
@@ -298,19 +366,37 @@ def laziness(
         distance=peak["distance"], forecast_gap=peak["forecast_gap"], spread=spread,
         kernel_threshold=kt, gap_threshold=gt, failed=tuple(failed), first_step=first,
         beyond_spread=beyond, within_spread=tuple(within), kind=kind, precision=precision,
+        unresolved=tuple(unresolved), relative_change_error=error["relative_change"],
+        distance_error=error["distance"],
     )
 
 
-def _kernel_phrase(peak: dict, names: list[str], threshold: float, spread) -> str:
+def _kernel_phrase(peak: dict, error: dict, names: list[str], threshold: float, spread,
+                   zero: list[str]) -> str:
     label = {"relative_change": "relative change ‖K_t − K_0‖/‖K_0‖",
              "distance": "distance 1 − cos(K_t, K_0)"}
-    text = "kernel " + ", ".join(f"{label[n]} up to {peak[n]:.2%}" for n in names)
-    text += f" (threshold {threshold:.0%}"
+    text = "kernel " + ", ".join(f"{label[n]} up to {_percent(peak[n], error[n])}"
+                                 for n in names)
+    text += f" (threshold {threshold * 100:.3g}%"
+    if any(error[n] is not None for n in names):
+        text += "; ± one standard error"
+    if zero:
+        text += (f"; {' and '.join(label[n].split(' ')[0] for n in zero)} within "
+                 f"{RESOLVE_BARS:g} standard errors of 0 at every step: no change resolved")
     if spread is not None:
         own = {"relative_change": spread.relative_change, "distance": spread.distance}
         text += (f"; between {spread.count} independent initializations "
                  + ", ".join(f"{own[n]:.2%}" for n in names))
     return text + ")"
+
+
+def _percent(value: float, error: float | None) -> str:
+    """``value`` as a percentage; with a standard error, ``value ± error`` to the error's second
+    significant digit (at least two decimals)."""
+    if error is None:
+        return f"{value:.2%}"
+    digits = 2 if error == 0 else max(2, 1 - int(np.floor(np.log10(error * 100))))
+    return f"{value * 100:.{digits}f}% ± {error * 100:.{digits}f}%"
 
 
 def _gap_phrase(gap: float, threshold: float) -> str:

@@ -34,6 +34,7 @@ import scipy.linalg
 from .._analysis import _checks
 from .._analysis._eig import eigh_descending
 from .._analysis._result import Result
+from .._analysis.laziness import RESOLVE_BARS
 from .features import Features
 
 #: Default number of column groups of the jackknife.
@@ -191,6 +192,27 @@ def features_spectrum(features, *, top: int = 10, groups: int = GROUPS,
     inv = np.where(w > 0, 1.0 / np.sqrt(np.maximum(w, 1e-300)), 0.0)
     u = np.concatenate([part @ (v * inv) for _, part in _chunks(phi)])
     return result, u
+
+
+def clusters(eigenvalues: Uncertain, *, bars: float = RESOLVE_BARS) -> tuple[tuple[int, int], ...]:
+    """Runs of consecutive sketched eigenvalues not told apart: ``(first, last)`` ranks (from 1)
+    where each neighbour's bias-corrected value lies within ``bars`` combined standard errors
+    ``√(σ_i² + σ_{i+1}²)`` of the next. Inside such a run the sketch mixes the eigenvectors:
+    the run's sum is estimated, single values may be off by several error bars and out of order
+    (docs/sketch.md); `refine_spectrum` resolves them with exact products."""
+    w = np.atleast_1d(np.asarray(eigenvalues.corrected, dtype=np.float64))
+    e = np.atleast_1d(np.asarray(eigenvalues.error, dtype=np.float64))
+    close = np.abs(np.diff(w)) <= bars * np.hypot(e[:-1], e[1:])
+    runs, start = [], None
+    for i, c in enumerate(close):
+        if c and start is None:
+            start = i
+        if not c and start is not None:
+            runs.append((start + 1, i + 1))
+            start = None
+    if start is not None:
+        runs.append((start + 1, close.size + 1))
+    return tuple(runs)
 
 
 @dataclasses.dataclass(frozen=True, repr=False)

@@ -33,7 +33,7 @@ import numpy as np
 
 from .._analysis import _checks, spectrum
 from .._analysis._checks import COND_WARN
-from .._analysis._result import Result, read_record
+from .._analysis._result import OtherVersionError, Result, read_record
 from .._version import __version__
 from .._words import counted
 from . import plots
@@ -237,6 +237,14 @@ def read_run(directory, *, name: str = "directory") -> tuple[RunAnalysis, RunDes
         )
     try:
         saved = read_record(record)
+    except OtherVersionError as err:
+        numbers = os.path.join(path, RESULT)
+        raise ValueError(
+            f"`{name}`={path!r} holds a {RECORD} saved by another version of ntkcalc, which "
+            f"this one cannot read ({err}). Re-run the analysis (`analyse_run`, then `write`) "
+            "to save it anew"
+            + (f"; its numbers are still in {numbers!r}." if os.path.isfile(numbers) else ".")
+        ) from None
     except (OSError, ValueError, KeyError, TypeError) as err:
         raise ValueError(f"{record!r} is damaged ({err}): call `write` on the `RunAnalysis` "
                          "again.") from None
@@ -334,12 +342,19 @@ def _class_names(a, desc: RunDescription) -> list[str]:
     return [str(c) for c in range(a.num_outputs)]
 
 
+def _verdict_head(a) -> str:
+    """The caution's first words for a run not called lazy: "Not lazy" or "Laziness not
+    resolved" (`Laziness.outcome`)."""
+    return "Not lazy" if a.laziness.outcome == "not lazy" else "Laziness not resolved"
+
+
 def _analysis_cautions(a, spec) -> list[str]:
     out = list(a.cautions)
     if not a.lazy:
         out.append(
-            f"Not lazy — the verdict: {a.verdict}. The kernels' forecasts and kernel ridge "
-            "estimates describe the network linearized at a checkpoint, not the trained one."
+            f"{_verdict_head(a)} — the verdict: {a.verdict}. The kernels' forecasts and kernel "
+            "ridge estimates describe the network linearized at a checkpoint, not the trained "
+            "one."
         )
     # the analysis words the float32 caution itself: the precision caution only for others
     dtype = "float64" if a.dtype == "float32" else a.dtype
@@ -472,14 +487,41 @@ def _rank_section(a) -> tuple[dict, _Section]:
     )
 
 
+def _sig(x: float, digits: int) -> str:
+    """``x`` to ``digits`` significant digits, without an exponent below 10⁶ ("960", not
+    "9.6e+02")."""
+    text = f"{x:.{digits}g}"
+    return f"{float(text):.0f}" if "e+" in text and abs(x) < 1e6 else text
+
+
 def _pm(u) -> str:
     """``value ± error`` of a scalar `Uncertain`; where the jackknife's bias estimate exceeds the
     error bar, the bias-corrected value ``value − bias``, saying so (a distance near 0 estimated
     from a ratio of sketched norms is biased by more than its error bar: docs/sketch.md)."""
     v, e, b = float(u.value), float(u.error), float(u.bias)
     if abs(b) > e:
-        return f"{v - b:.4g} ± {e:.2g} (bias-corrected from {v:.4g})"
-    return f"{v:.4g} ± {e:.2g}"
+        return f"{_sig(v - b, 4)} ± {_sig(e, 2)} (bias-corrected from {_sig(v, 4)})"
+    return f"{_sig(v, 4)} ± {_sig(e, 2)}"
+
+
+def _top_eigenvalues(c, shown: int = 5) -> str:
+    """The top ``shown`` bias-corrected eigenvalues with their error bars, and the runs of them
+    the sketch does not tell apart (`clusters`): their sum is estimated, single values are not."""
+    from .._analysis.laziness import RESOLVE_BARS
+    from .._sketch.analysis import clusters
+
+    u = c.eigenvalues
+    text = ", ".join(f"{_sig(float(v), 4)} ± {_sig(float(e), 2)}" for v, e in zip(
+        np.asarray(u.corrected)[:shown], np.asarray(u.error)[:shown], strict=True))
+    runs = [(a, b) for a, b in clusters(u) if a <= shown]
+    if runs:
+        one = len(runs) == 1
+        text += ("; ranks " + " and ".join(f"{a}–{b}" for a, b in runs)
+                 + f" lie within {RESOLVE_BARS:g} error bars of their neighbours: "
+                 + ("a cluster" if one else "clusters") + " the sketch does not resolve (read "
+                 + ("its" if one else "each one's") + " sum; single values may be off by several "
+                 "error bars and out of order; refine_spectrum gives exact ones)")
+    return text
 
 
 def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
@@ -489,25 +531,27 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
     names = _class_names(a, desc)
     cautions = list(a.cautions)
     if not a.lazy:
-        cautions.append(f"Not lazy — the verdict: {a.verdict}.")
+        cautions.append(f"{_verdict_head(a)} — the verdict: {a.verdict}.")
     last = sk.checkpoints[-1]
     fit = last.fit
     steps = a.steps.tolist()
     test = ("" if fit.test_mse is None else
             f"; on held-out data {_pm(fit.test_mse)}")
     summary = [
-        f"Data and run: {a.num_train} train / {a.num_test} test {desc.data}, {a.num_outputs} "
-        f"outputs; {desc.model} ({a.num_params:,} parameters, {a.dtype}); checkpoints at steps "
+        f"Data and run: {a.num_train} train / {a.num_test} test {desc.data}, "
+        f"{counted(a.num_outputs, 'output')}; {desc.model} ({a.num_params:,} parameters, "
+        f"{a.dtype}); checkpoints at steps "
         f"{', '.join(map(str, steps))}.",
         f"Kernel: sketched NTK features, k = {sk.k} per example (not the exact kernel): "
-        f"{a.choice.reason}. Numbers are estimates ± one jackknife standard error.",
-        f"Laziness verdict (on the bias-corrected sketched kernel distance): {a.verdict}.",
+        f"{a.choice.reason}. Its numbers are estimates ± one jackknife standard error.",
+        f"Laziness verdict (on the bias-corrected sketched kernel distance alone; the relative "
+        f"change is not estimated): {a.verdict}.",
         f"Label alignment {_pm(sk.alignment[0])} → {_pm(sk.alignment[-1])}; kernel distance "
         f"to step {steps[0]} at step {steps[-1]}: {_pm(sk.distance[-1])}.",
         f"Kernel ridge at step {last.step}, ridge {last.ridge:.3g} chosen by GCV: GCV "
         f"{_pm(fit.gcv)}{test} ({plots.MSE_LABEL}).",
-        f"Not computed: {len(sk.refused)} answers that need the exact kernel (see the "
-        f"cautions); cautions: {len(cautions)}.",
+        f"Not computed, for want of the exact kernel: {counted(len(sk.refused), 'answer')} "
+        f"(see the cautions); cautions: {len(cautions)}.",
     ]
     rows = [("kernel", f"sketched features, k = {sk.k}, seed {sk.seed}"),
             ("why", a.choice.reason)]
@@ -518,11 +562,9 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         rows.append((f"step {s}: distance to step {steps[0]} / alignment",
                      f"{'—' if d is None else _pm(d)} / {_pm(al)}"))
     for c in sk.checkpoints:
-        top = ", ".join(f"{float(v):.4g} ± {float(e):.2g}" for v, e in zip(
-            np.asarray(c.eigenvalues.corrected)[:5], np.asarray(c.eigenvalues.error)[:5],
-            strict=True))
-        rows.append((f"step {c.step}: top eigenvalues (bias-corrected)", top))
-        rows.append((f"step {c.step}: kernel ridge at {c.ridge:.3g}",
+        rows.append((f"step {c.step}: top eigenvalues of the trace kernel (bias-corrected)",
+                     _top_eigenvalues(c)))
+        rows.append((f"step {c.step}: kernel ridge MSE at ridge {c.ridge:.3g}",
                      f"train {_pm(c.fit.train_mse)}, GCV {_pm(c.fit.gcv)}"
                      + ("" if c.fit.test_mse is None else f", test {_pm(c.fit.test_mse)}")))
     ranks, rank_section = _rank_section(a)
@@ -534,7 +576,10 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         _Section("sketch", "Answers from sketched features",
                  "Each kernel is estimated by φ φᵀ with φ the sketched NTK features "
                  "(ntk_features); the same seed at every checkpoint, so distances measure the "
-                 "kernels' change, not the sketches'.",
+                 "kernels' change, not the sketches'. Each ± is one jackknife standard error: "
+                 "how much the number varies between independent sketches of this size; a "
+                 "held-out MSE also varies with the test examples drawn, which it does not "
+                 f"include. Errors: {plots.MSE_LABEL}.",
                  {**sk.to_dict(), "choice": a.choice.to_dict()}, rows=tuple(rows)),
         rank_section,
         _setup_section(a, desc, names),
