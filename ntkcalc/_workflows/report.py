@@ -520,7 +520,7 @@ def _top_eigenvalues(c, shown: int = 5) -> str:
                  + f" lie within {RESOLVE_BARS:g} error bars of their neighbours: "
                  + ("a cluster" if one else "clusters") + " the sketch does not resolve (read "
                  + ("its" if one else "each one's") + " sum; single values may be off by several "
-                 "error bars and out of order; refine_spectrum gives exact ones)")
+                 "error bars and out of order; refine_spectrum refines them with exact products)")
     return text
 
 
