@@ -465,6 +465,9 @@ def test_sketched_report_prints_every_number_with_its_error_bar(sketched, tmp_pa
     # both kernel criteria, as on the exact path (no caution that one is missing)
     assert sk.laziness.relative_change_error == s.relative_change[-1].error > 0
     assert not any("not estimated" in c for c in sk.cautions)
+    # a kernel criterion failed: the yardsticks the sketch lacks (init spread, forecast gap) named
+    assert any(c.startswith("Not lazy on the kernel's change alone") for c in sk.cautions) == bool(
+        sk.laziness.failed)
     with open(html_path, encoding="utf-8") as fh:
         page = html.unescape(fh.read())
     with open(html_path.replace("report.html", "report.json"), encoding="utf-8") as fh:

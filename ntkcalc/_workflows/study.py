@@ -110,6 +110,14 @@ SKETCH_REFUSED = (
     "rerun with kernel='exact' on a subset of the examples (x_train[:n]) for it."
 )
 
+#: A sketched verdict failed on the kernel's change, without the yardsticks that can excuse it.
+SKETCH_KERNEL_ONLY_NOTE = (
+    "Not lazy on the kernel's change alone: the sketched path measures neither how much the kernel "
+    "differs between independent initializations (`inits`) nor whether the outputs follow the "
+    "linearized forecast (`lr`), either of which can show a change this size to be ordinary (the "
+    "exact path's verdict weighs both); rerun with kernel='exact' on a subset of the examples "
+    "(x_train[:n]), with `inits` and `lr`, to decide.")
+
 PER_OUTPUT_NOTE = (
     "The forecast from step {step} uses the per-output kernel trace / {o} (assuming Θ = K ⊗ I_{o}, "
     "no cross-output terms) because the full kernel has N·O = {rows} rows, above {limit}; pass "
@@ -790,6 +798,8 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, st
              f"is \"not resolved\" where neither failed and one lies within {verdict.bars:g} "
              f"error bars of the threshold.",
              *refused]
+    if verdict.failed:
+        notes.append(SKETCH_KERNEL_ONLY_NOTE)
     if dtype == "float32":
         notes.append(FLOAT32_NOTE)
     kinds = {
