@@ -64,6 +64,7 @@ from ._sketch.analysis import FeatureRidge as FeatureRidge
 from ._sketch.analysis import Uncertain as Uncertain
 from ._sketch.analysis import features_alignment as features_alignment
 from ._sketch.analysis import features_distance as features_distance
+from ._sketch.analysis import features_relative_change as features_relative_change
 from ._sketch.analysis import features_ridge as features_ridge
 from ._sketch.analysis import features_spectrum as features_spectrum
 from ._sketch.features import Features as Features

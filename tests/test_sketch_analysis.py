@@ -11,6 +11,7 @@ jackknife estimates the standard error of smooth statistics of i.i.d. groups).
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 
 import flax.linen as nn
@@ -113,15 +114,22 @@ def test_alignment_numerator_and_unbiased_norm():
 # -- statistics against the exact kernel ------------------------------------------------------
 
 
-def test_alignment_within_error_of_exact_and_error_is_honest():
-    x, labels = digits()
-    want = ntkcalc.alignment(exact(), labels)
-    ests = [ntkcalc.features_alignment(feats(s), labels) for s in range(6)]
+def assert_honest(ests, want: float, *, corrected: bool):
+    """Each estimate (its value, or bias-corrected value) within four of its jackknife errors of
+    the exact ``want``, and the mean jackknife error against the spread of the values over the
+    independent seeds (Efron & Stein 1981)."""
     for e in ests:
-        assert abs(e.value - want) <= 4 * e.error
+        assert abs((e.corrected if corrected else e.value) - want) <= 4 * e.error
     spread = np.std([e.value for e in ests], ddof=1)
     mean_error = np.mean([e.error for e in ests])
     assert 0.33 < mean_error / spread < 3.0  # six seeds: the spread itself is ±30%
+
+
+def test_alignment_within_error_of_exact_and_error_is_honest():
+    x, labels = digits()
+    want = ntkcalc.alignment(exact(), labels)
+    assert_honest([ntkcalc.features_alignment(feats(s), labels) for s in range(6)], want,
+                  corrected=False)
 
 
 def test_top_eigenvalues_within_error_of_exact():
@@ -153,6 +161,32 @@ def test_distance_between_checkpoints_within_error_of_exact():
     assert abs(same.value) <= 4 * same.error + 1e-12
 
 
+def test_relative_change_within_error_of_exact_and_error_is_honest():
+    """The relative change ‖K_t − K_0‖_F/‖K_0‖_F from the U-statistics against the exact
+    kernels' (`ntkcalc.ntk`, tested against jax.jacrev) within four of its jackknife errors, and
+    the jackknife error against the spread over six independent seeds (Efron & Stein 1981)."""
+    from ntkcalc._analysis.laziness import relative_change
+
+    want = relative_change(exact(0.05), exact(0.0))
+    assert want > 0.05  # above the laziness threshold: the change the verdict must see
+    assert_honest([ntkcalc.features_relative_change(feats(s, shift=0.05), feats(s))
+                   for s in range(6)], want, corrected=True)
+
+
+def test_relative_change_sees_a_kernel_that_only_grows():
+    """Features scaled by s: K_t = s² K_0, so ‖K_t − K_0‖/‖K_0‖ = s² − 1 exactly while the
+    distance is 0 (closed form); with shared projections the U-statistics give both without
+    noise. The same features twice: 0 with a zero error bar."""
+    f0 = feats(0)
+    grown = dataclasses.replace(f0, features=1.1 * np.asarray(f0.features))
+    got = ntkcalc.features_relative_change(grown, f0)
+    assert got.value == pytest.approx(1.1**2 - 1, rel=1e-9)
+    assert got.error == pytest.approx(0.0, abs=1e-9)
+    assert abs(ntkcalc.features_distance(grown, f0).value) < 1e-9
+    same = ntkcalc.features_relative_change(f0, f0)
+    assert same.value == 0.0 and same.error == 0.0
+
+
 def test_argument_errors():
     phi, y = random_features()
     with pytest.raises(ValueError, match="`groups`=1"):
@@ -167,3 +201,5 @@ def test_argument_errors():
         ntkcalc.features_distance(phi, feats(0))
     with pytest.raises(ValueError, match="seed"):
         ntkcalc.features_distance(feats(0), feats(1))
+    with pytest.raises(ValueError, match="seed"):
+        ntkcalc.features_relative_change(feats(0), feats(1))

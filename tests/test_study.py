@@ -386,8 +386,9 @@ def _within(u, want, sigmas=4.0):
 
 def test_sketched_run_matches_exact_within_error_bars(sketched):
     """Forced sketch vs the exact path on the same digits run (k = 1024 features, N = 120):
-    distance to step 0 and centered alignment against the exact path's drift (whose formulas
-    are checked above against numpy); top eigenvalues against numpy's eigh of `ntkcalc.ntk`
+    distance and relative change to step 0 and centered alignment against the exact path's
+    drift (whose formulas are checked above against numpy), and the verdict of the same kind as
+    the exact one or "not resolved"; top eigenvalues against numpy's eigh of `ntkcalc.ntk`
     (checked against jacrev elsewhere); the test MSE of kernel ridge at the ridge GCV chose,
     against scikit-learn's KernelRidge on the exact kernels. Each within 4 error bars."""
     exact, sk, _ = sketched
@@ -396,8 +397,10 @@ def test_sketched_run_matches_exact_within_error_bars(sketched):
     assert exact.choice.rule == "fits" and exact.kinds["kernel"] == f"exact: {exact.choice.reason}"
     assert sk.choice.rule == "requested" and sk.choice.reason == "kernel='sketch'"
     s = sk.sketched
-    assert s.distance[0] is None
+    assert s.distance[0] is None and s.relative_change[0] is None
     _within(s.distance[-1], exact.drift.distance_to_initial[-1])
+    _within(s.relative_change[-1], exact.drift.relative_change[-1])
+    assert sk.laziness.outcome in (exact.laziness.outcome, "not resolved")
     for t in range(len(SAVED)):
         _within(s.alignment[t], exact.drift.alignment[t])
     for c, step in zip(s.checkpoints, (0, 20), strict=True):
@@ -452,13 +455,19 @@ def test_sketched_report_prints_every_number_with_its_error_bar(sketched, tmp_pa
 
     _, sk, html_path = sketched
     s = sk.sketched
-    want = ntkcalc.laziness(distance=[0.0] + [d.corrected for d in s.distance[1:]],
-                            distance_error=[0.0] + [d.error for d in s.distance[1:]],
-                            steps=sk.steps)
+    want = ntkcalc.laziness(
+        relative_change=[0.0] + [c.corrected for c in s.relative_change[1:]],
+        relative_change_error=[0.0] + [c.error for c in s.relative_change[1:]],
+        distance=[0.0] + [d.corrected for d in s.distance[1:]],
+        distance_error=[0.0] + [d.error for d in s.distance[1:]], steps=sk.steps)
     assert sk.laziness == want and sk.verdict == want.sentence
     assert sk.laziness.distance_error == s.distance[-1].error > 0 and "±" in sk.verdict
-    # the criterion it does not measure is named (the exact verdict has both)
-    assert sk.laziness.relative_change is None and _names_the_unmeasured_relative_change(sk)
+    # both kernel criteria, as on the exact path (no caution that one is missing)
+    assert sk.laziness.relative_change_error == s.relative_change[-1].error > 0
+    assert not any("not estimated" in c for c in sk.cautions)
+    # a kernel criterion failed: the yardsticks the sketch lacks (init spread, forecast gap) named
+    assert any(c.startswith("Not lazy on the kernel's change alone") for c in sk.cautions) == bool(
+        sk.laziness.failed)
     with open(html_path, encoding="utf-8") as fh:
         page = html.unescape(fh.read())
     with open(html_path.replace("report.html", "report.json"), encoding="utf-8") as fh:
@@ -472,6 +481,8 @@ def test_sketched_report_prints_every_number_with_its_error_bar(sketched, tmp_pa
     for label, value in rows:
         if "distance" in label or "alignment" in label or "eigenvalues" in label:
             assert "±" in value, (label, value)
+        if "relative change" in label and "—" not in value:
+            assert value.count("±") == 3, (label, value)
         if "ridge" in label:
             assert "MSE" in label and value.count("±") == 3, (label, value)
     for c in s.checkpoints:  # a cluster of eigenvalues the sketch does not resolve is named
@@ -493,12 +504,6 @@ def test_sketched_report_prints_every_number_with_its_error_bar(sketched, tmp_pa
     assert any(c.startswith("Laziness not resolved — the verdict: not resolved: ")
                for c in cautions)
     assert not any(c.startswith("Not lazy") for c in cautions)
-
-
-def _names_the_unmeasured_relative_change(sk) -> bool:
-    """The sketched run's cautions say the relative change is not estimated from features."""
-    return any(c.startswith("The kernel's relative change ‖K_t − K_0‖/‖K_0‖ is not estimated")
-               for c in sk.cautions)
 
 
 def test_clusters_of_sketched_eigenvalues():

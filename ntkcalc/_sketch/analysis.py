@@ -10,12 +10,13 @@ the features may stay on disk.
   ``K̂ (K̂ + r I)⁻¹ y`` (the push-through identity; scikit-learn's ``KernelRidge(alpha=r)``
   convention); GCV through ``tr H = Σ λ/(λ + r)`` (Golub, Heath & Wahba, Technometrics 21, 1979),
   leave-one-out through ``H_ii = φ_iᵀ (G + rI)⁻¹ φ_i`` (common practice).
-- alignment and kernel distance: ``⟨K, YYᵀ⟩ = ‖φᵀY‖²`` is unbiased, but ``‖K̂‖²_F`` is biased up by
-  the sketch noise; the unbiased U-statistic over distinct features is used instead:
-  ``‖K‖²_F ≈ k/(k−1) (‖G‖²_F − Σ_m G_mm²)`` and, with ``C = φ1ᵀφ2``,
+- alignment, kernel distance and relative change: ``⟨K, YYᵀ⟩ = ‖φᵀY‖²`` is unbiased, but
+  ``‖K̂‖²_F`` is biased up by the sketch noise; the unbiased U-statistic over distinct features
+  is used instead: ``‖K‖²_F ≈ k/(k−1) (‖G‖²_F − Σ_m G_mm²)`` and, with ``C = φ1ᵀφ2``,
   ``⟨K1, K2⟩_F ≈ k/(k−1) (‖C‖²_F − Σ_m C_mm²)``
   (features of independent columns; for two checkpoints the same seed gives each column the same
-  projection, so only distinct columns are independent).
+  projection, so only distinct columns are independent); ``‖K1 − K2‖²_F`` is their sum
+  ``‖K1‖² + ‖K2‖² − 2⟨K1, K2⟩`` (`features_relative_change`).
 
 Error bars: the k features are independent and identically distributed, so the delete-a-group
 jackknife over G groups of columns (Quenouille 1956; Efron & Stein, Ann. Stat. 9, 1981) gives a
@@ -361,15 +362,12 @@ def features_alignment(features, y, *, centered: bool = True,
     return _jackknife(estimate, k, groups)
 
 
-def features_distance(features1: Features, features2: Features, *,
-                      groups: int = GROUPS) -> Uncertain:
-    """Kernel distance ``1 − ⟨K1, K2⟩_F / (‖K1‖_F ‖K2‖_F)`` between two checkpoints' kernels.
-
-    The definition of `ntkcalc.kernel_distance` (Fort et al., NeurIPS 2020, arXiv:2010.15110),
-    each Frobenius product by its unbiased U-statistic over distinct features. Both feature sets
-    must come from the same seed, k, outputs mode and method on the same inputs: they then share
-    every projection, so the distance reflects the kernels' change, not two sketches' noise.
-    """
+def _pair_norms(features1: Features, features2: Features):
+    """The one place for the U-statistics of two checkpoints' kernels: checks that the features
+    share their projections, gathers ``G1 = φ1ᵀφ1``, ``G2 = φ2ᵀφ2`` and ``C = φ1ᵀφ2`` in one
+    streamed pass each, and returns (k, ``norms(keep, scale)``) where ``norms`` gives the
+    U-statistics (``‖K1‖²_F``, ``‖K2‖²_F``, ``⟨K1, K2⟩_F``) on the columns ``keep`` (the
+    `_jackknife` convention), or None with a RuntimeWarning when a norm is not positive."""
     for name, f in (("features1", features1), ("features2", features2)):
         if not isinstance(f, Features):
             raise TypeError(f"`{name}` must be `Features` from `ntkcalc.ntk_features` (the seed "
@@ -381,19 +379,66 @@ def features_distance(features1: Features, features2: Features, *,
         raise ValueError(f"`features1` and `features2` differ in {what}: compute both with the "
                          "same inputs, k, seed, outputs and method, so they share projections.")
     p1, p2 = _array("features1", features1), _array("features2", features2)
-    k = p1.shape[1]
     g1, _, _, c = _moments(p1, other=p2)
     g2, _, _, _ = _moments(p2)
 
-    def estimate(keep, scale):
+    def norms(keep, scale):
         ix = np.ix_(keep, keep)
-        a = _frobenius2(scale * g1[ix], len(keep))
-        b = _frobenius2(scale * g2[ix], len(keep))
-        ab = _frobenius2(scale * c[ix], len(keep))
+        a, b, ab = (_frobenius2(scale * m[ix], len(keep)) for m in (g1, g2, c))
         if a <= 0 or b <= 0:
             warnings.warn("a kernel's Frobenius norm estimate is not positive: k is too small "
-                          "for this distance; raise k.", RuntimeWarning, stacklevel=4)
+                          "for this comparison of kernels; raise k.", RuntimeWarning,
+                          stacklevel=5)
+            return None
+        return a, b, ab
+
+    return p1.shape[1], norms
+
+
+def features_distance(features1: Features, features2: Features, *,
+                      groups: int = GROUPS) -> Uncertain:
+    """Kernel distance ``1 − ⟨K1, K2⟩_F / (‖K1‖_F ‖K2‖_F)`` between two checkpoints' kernels.
+
+    The definition of `ntkcalc.kernel_distance` (Fort et al., NeurIPS 2020, arXiv:2010.15110),
+    each Frobenius product by its unbiased U-statistic over distinct features. Both feature sets
+    must come from the same seed, k, outputs mode and method on the same inputs: they then share
+    every projection, so the distance reflects the kernels' change, not two sketches' noise.
+    """
+    k, norms = _pair_norms(features1, features2)
+
+    def estimate(keep, scale):
+        n = norms(keep, scale)
+        return np.nan if n is None else 1.0 - n[2] / np.sqrt(n[0] * n[1])
+
+    return _jackknife(estimate, k, groups)
+
+
+def features_relative_change(features1: Features, features2: Features, *,
+                             groups: int = GROUPS) -> Uncertain:
+    """Relative change ``‖K1 − K2‖_F / ‖K2‖_F`` of the kernel behind ``features1`` from the one
+    behind ``features2`` (the reference: the first checkpoint's), the laziness criterion
+    `ntkcalc.laziness` reads beside the distance; it also sees a kernel that only grows or
+    shrinks, which the distance does not.
+
+    From the same unbiased U-statistics as `features_distance` (same requirements: one seed, k,
+    outputs mode and method): ``‖K1 − K2‖²_F = ‖K1‖²_F + ‖K2‖²_F − 2⟨K1, K2⟩_F`` is unbiased, and
+    with shared projections its noise shrinks with the change (the first-order terms cancel over
+    the pairs of distinct features: our derivation, checked against independent seeds in
+    tests/test_sketch_analysis.py), so a small change is still resolved. The estimate is the
+    signed square root of ``‖K1 − K2‖²_F / ‖K2‖²_F``: noise can push that ratio below 0 when the
+    kernels barely differ, read then as a negative change (within its error bars of 0), not
+    clipped, so its jackknife error bar stays honest. A square root near 0 is biased (its
+    jackknife ``bias`` says by how much): read ``.corrected``, as the laziness verdict does.
+    A separate function, not a second return of `features_distance`, so that one's result keeps
+    its shape; each reads the two feature sets once.
+    """
+    k, norms = _pair_norms(features1, features2)
+
+    def estimate(keep, scale):
+        n = norms(keep, scale)
+        if n is None:
             return np.nan
-        return 1.0 - ab / np.sqrt(a * b)
+        ratio = (n[0] + n[1] - 2.0 * n[2]) / n[1]
+        return float(np.sign(ratio) * np.sqrt(abs(ratio)))
 
     return _jackknife(estimate, k, groups)

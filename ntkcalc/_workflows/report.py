@@ -544,10 +544,11 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
         f"{', '.join(map(str, steps))}.",
         f"Kernel: sketched NTK features, k = {sk.k} per example (not the exact kernel): "
         f"{a.choice.reason}. Its numbers are estimates ± one jackknife standard error.",
-        f"Laziness verdict (on the bias-corrected sketched kernel distance alone; the relative "
-        f"change is not estimated): {a.verdict}.",
-        f"Label alignment {_pm(sk.alignment[0])} → {_pm(sk.alignment[-1])}; kernel distance "
-        f"to step {steps[0]} at step {steps[-1]}: {_pm(sk.distance[-1])}.",
+        f"Laziness verdict (on the bias-corrected sketched relative change and distance): "
+        f"{a.verdict}.",
+        f"Label alignment {_pm(sk.alignment[0])} → {_pm(sk.alignment[-1])}; kernel relative "
+        f"change and distance to step {steps[0]} at step {steps[-1]}: "
+        f"{_pm(sk.relative_change[-1])} and {_pm(sk.distance[-1])}.",
         f"Kernel ridge at step {last.step}, ridge {last.ridge:.3g} chosen by GCV: GCV "
         f"{_pm(fit.gcv)}{test} ({plots.MSE_LABEL}).",
         f"Not computed, for want of the exact kernel: {counted(len(sk.refused), 'answer')} "
@@ -558,9 +559,9 @@ def _sketched_sections(a, desc: RunDescription) -> list[_Section]:
     if sk.store is not None:
         rows.append(("features stores", f"{sk.store} ({counted(sk.computed, 'block')} computed "
                                         f"in this call, {sk.reused} reused)"))
-    for s, d, al in zip(steps, sk.distance, sk.alignment, strict=True):
-        rows.append((f"step {s}: distance to step {steps[0]} / alignment",
-                     f"{'—' if d is None else _pm(d)} / {_pm(al)}"))
+    for s, c, d, al in zip(steps, sk.relative_change, sk.distance, sk.alignment, strict=True):
+        rows.append((f"step {s}: relative change / distance to step {steps[0]} / alignment",
+                     " / ".join("—" if u is None else _pm(u) for u in (c, d, al))))
     for c in sk.checkpoints:
         rows.append((f"step {c.step}: top eigenvalues of the trace kernel (bias-corrected)",
                      _top_eigenvalues(c)))

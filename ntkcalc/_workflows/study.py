@@ -28,10 +28,12 @@ Past the exact kernel's reach (``kernel="auto"``: the (T, N, N) kernels do not f
 budget, or the planner's time estimate for them exceeds `EXACT_SECONDS`; or ``kernel="sketch"``)
 the answers come from sketched NTK features (`ntk_features`, trace, one seed for every
 checkpoint), each with its jackknife error bar (`SketchedAnswers`): drift as the kernel distance
-to the first checkpoint (`features_distance`), alignment (`features_alignment`), top eigenvalues
-(`features_spectrum`), kernel ridge with GCV and its test error (`features_ridge`). Answers that
-need the exact kernel — forecasts, the per-group kernels — are not computed then, and the
-result's cautions say so; ``kinds`` and ``kernel`` say which path was taken and why.
+and the relative change to the first checkpoint (`features_distance`,
+`features_relative_change`; the laziness verdict reads both, as on the exact path), alignment
+(`features_alignment`), top eigenvalues (`features_spectrum`), kernel ridge with GCV and its test
+error (`features_ridge`). Answers that need the exact kernel — forecasts, the per-group kernels —
+are not computed then, and the result's cautions say so; ``kinds`` and ``kernel`` say which path
+was taken and why.
 
 Errors are in one convention: MSE, the mean over examples and outputs of ``(f − y)²``.
 """
@@ -68,6 +70,7 @@ from .._sketch.analysis import (
     Uncertain,
     features_alignment,
     features_distance,
+    features_relative_change,
     features_ridge,
     features_spectrum,
     features_trace,
@@ -106,6 +109,14 @@ SKETCH_REFUSED = (
     "{what} not computed: {why} It needs the exact kernel, which was not computed ({reason}); "
     "rerun with kernel='exact' on a subset of the examples (x_train[:n]) for it."
 )
+
+#: A sketched verdict failed on the kernel's change, without the yardsticks that can excuse it.
+SKETCH_KERNEL_ONLY_NOTE = (
+    "Not lazy on the kernel's change alone: the sketched path measures neither how much the kernel "
+    "differs between independent initializations (`inits`) nor whether the outputs follow the "
+    "linearized forecast (`lr`), either of which can show a change this size to be ordinary (the "
+    "exact path's verdict weighs both); rerun with kernel='exact' on a subset of the examples "
+    "(x_train[:n]), with `inits` and `lr`, to decide.")
 
 PER_OUTPUT_NOTE = (
     "The forecast from step {step} uses the per-output kernel trace / {o} (assuming Θ = K ⊗ I_{o}, "
@@ -260,6 +271,8 @@ class SketchedAnswers(Result):
         distance: (T,) `Uncertain` kernel distance ``1 − cos(K_t, K_0)`` to the first checkpoint
             (`features_distance`; None at the first). Near 0 its jackknife bias can exceed its
             error bar (docs/sketch.md): read ``.corrected``, as the verdict and the report do.
+        relative_change: (T,) `Uncertain` relative change ``‖K_t − K_0‖_F / ‖K_0‖_F`` to the
+            first checkpoint (`features_relative_change`; None at the first), read the same way.
         alignment: (T,) `Uncertain` centered kernel-target alignment per checkpoint.
         checkpoints: `SketchedCheckpoint` at each step of ``forecast_from``.
         refused: the answers that need the exact kernel, each with the reason (also cautions).
@@ -272,6 +285,7 @@ class SketchedAnswers(Result):
     k: int
     seed: int
     distance: tuple
+    relative_change: tuple
     alignment: tuple
     checkpoints: tuple[SketchedCheckpoint, ...]
     refused: tuple[str, ...]
@@ -286,6 +300,8 @@ class SketchedAnswers(Result):
             "k": self.k, "seed": self.seed, "store": self.store, "computed": self.computed,
             "reused": self.reused,
             "distance": [None if d is None else _uncertain(d) for d in self.distance],
+            "relative_change": [None if d is None else _uncertain(d)
+                                for d in self.relative_change],
             "alignment": [_uncertain(a) for a in self.alignment],
             "checkpoints": [{
                 "step": c.step, "eigenvalues": _uncertain(c.eigenvalues),
@@ -296,13 +312,6 @@ class SketchedAnswers(Result):
             } for c in self.checkpoints],
             "refused": list(self.refused),
         })
-
-
-#: What the sketched verdict does not measure (the exact path's second kernel criterion).
-SKETCH_SCALE_NOTE = (
-    "The kernel's relative change ‖K_t − K_0‖/‖K_0‖ is not estimated from the features: the "
-    "sketched verdict rests on the distance alone, which does not see a kernel that only grows "
-    "or shrinks; run kernel='exact' on a subset of the examples (x_train[:n]) for it.")
 
 
 def _uncertain(u: Uncertain) -> dict:
@@ -338,7 +347,7 @@ class RunAnalysis(Result):
         kernel: ``"exact"`` (kernels by `ntk`) or ``"sketch"`` (features by `ntk_features`:
             ``drift`` is None, ``groups`` and ``checkpoints`` are empty, the answers are in
             ``sketched``, the laziness verdict rests on the bias-corrected sketched kernel
-            distance).
+            relative change and distance).
         sketched: `SketchedAnswers`, or None on the exact path.
         choice: `KernelChoice`: which path and the numbers it was chosen by (memory, the
             planner's estimates, the limit); ``choice.reason`` is the sentence the report prints.
@@ -435,10 +444,13 @@ class RunAnalysis(Result):
         """The sketched answers with their error bars (± one jackknife standard error)."""
         sk = self.sketched
         change, align, spec = fig.subplots(1, 3)
-        later = [(s, d) for s, d in zip(self.steps, sk.distance, strict=True) if d is not None]
-        change.errorbar([s for s, _ in later], [d.corrected for _, d in later],
-                        yerr=[d.error for _, d in later], fmt="s--", color=plots.ESTIMATE,
-                        label="distance 1 − cos(K_t, K_0), bias-corrected")
+        for ests, fmt, color, label in (
+                (sk.relative_change, "o-", plots.OBSERVED, "relative change ‖K_t − K_0‖/‖K_0‖"),
+                (sk.distance, "s--", plots.ESTIMATE, "distance 1 − cos(K_t, K_0)")):
+            later = [(s, d) for s, d in zip(self.steps, ests, strict=True) if d is not None]
+            change.errorbar([s for s, _ in later], [d.corrected for _, d in later],
+                            yerr=[d.error for _, d in later], fmt=fmt, color=color,
+                            label=f"{label}, bias-corrected")
         change.axhline(self.laziness.kernel_threshold, color=plots.REFERENCE, ls=":",
                        label=f"threshold {self.laziness.kernel_threshold:.0%}")
         change.set(xlabel="training step", ylabel="kernel change (sketched)",
@@ -746,6 +758,8 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, st
     with cautions.watch():
         distance = tuple(None if i == 0 else features_distance(f, feats[0])
                          for i, f in enumerate(feats))
+        change = tuple(None if i == 0 else features_relative_change(f, feats[0])
+                       for i, f in enumerate(feats))
         align = tuple(features_alignment(f, y) for f in feats)
         answers, tests = [], []
         for s in chosen:
@@ -764,14 +778,14 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, st
             j = int(np.argmin(gcv))
             answers.append(SketchedCheckpoint(step=int(s), eigenvalues=eig, ridges=grid, gcv=gcv,
                                               ridge=float(grid[j]), fit=fits[j]))
-    # the verdict on the bias-corrected distance (a ratio of sketched norms is biased, near 0 by
-    # more than its error bar) with its error bars, as estimated (below 0 too): within its error
-    # bars of the threshold the verdict is "not resolved" (`laziness`)
-    verdict = laziness(distance=[0.0] + [float(d.corrected) for d in distance[1:]],
-                       distance_error=[0.0] + [float(d.error) for d in distance[1:]],
+    # the verdict on both kernel criteria, bias-corrected (ratios of sketched norms are biased,
+    # near 0 by more than their error bars) with their error bars, as estimated (below 0 too):
+    # within its error bars of the threshold a criterion is "not resolved" (`laziness`)
+    verdict = laziness(**_sketched_criteria(distance=distance, relative_change=change),
                        steps=step_arr, kernel_threshold=threshold)
     sketched = SketchedAnswers(
-        k=k, seed=0, distance=distance, alignment=align, checkpoints=tuple(answers),
+        k=k, seed=0, distance=distance, relative_change=change, alignment=align,
+        checkpoints=tuple(answers),
         refused=tuple(refused), store=None if store is None else os.path.abspath(store),
         computed=sum(f.computed for f in feats + tests),
         reused=sum(f.reused for f in feats + tests))
@@ -780,11 +794,12 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, st
                   for net, step in zip(nets, step_arr, strict=True))
     notes = [f"Sketched features (k = {k}) instead of exact kernels: {reason}. Every number is "
              f"an estimate with a jackknife error bar; the laziness verdict rests on the "
-             f"bias-corrected sketched kernel distance and its error bar, and is \"not "
-             f"resolved\" where that distance lies within {verdict.bars:g} error bars of the "
-             f"threshold.",
-             SKETCH_SCALE_NOTE,
+             f"bias-corrected sketched relative change and distance with their error bars, and "
+             f"is \"not resolved\" where neither failed and one lies within {verdict.bars:g} "
+             f"error bars of the threshold.",
              *refused]
+    if verdict.failed:
+        notes.append(SKETCH_KERNEL_ONLY_NOTE)
     if dtype == "float32":
         notes.append(FLOAT32_NOTE)
     kinds = {
@@ -804,6 +819,17 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, st
         groups=(), feature_ranks=ranks, checkpoints=(),
         cautions=tuple(dict.fromkeys(notes + cautions.items)), kernel="sketch",
         sketched=sketched, choice=choice)
+
+
+def _sketched_criteria(**criteria) -> dict:
+    """`laziness`'s keywords for the sketched kernel criteria: each (T,) tuple of `Uncertain`
+    (None at the first checkpoint, which is 0 exactly) as its bias-corrected values and their
+    standard errors."""
+    out = {}
+    for name, ests in criteria.items():
+        out[name] = [0.0] + [float(e.corrected) for e in ests[1:]]
+        out[f"{name}_error"] = [0.0] + [float(e.error) for e in ests[1:]]
+    return out
 
 
 def _feature_stores(store, step_arr, chosen) -> dict:
