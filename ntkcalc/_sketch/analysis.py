@@ -395,6 +395,28 @@ def _pair_norms(features1: Features, features2: Features):
     return p1.shape[1], norms
 
 
+def _distance(n) -> float:
+    """``1 − ⟨K1, K2⟩ / (‖K1‖ ‖K2‖)`` from the three U-statistics (or nan)."""
+    return np.nan if n is None else 1.0 - n[2] / np.sqrt(n[0] * n[1])
+
+
+def _relative_change(n) -> float:
+    """Signed ``√((‖K1‖² + ‖K2‖² − 2⟨K1, K2⟩) / ‖K2‖²)`` from the three U-statistics (or nan)."""
+    if n is None:
+        return np.nan
+    ratio = (n[0] + n[1] - 2.0 * n[2]) / n[1]
+    return float(np.sign(ratio) * np.sqrt(abs(ratio)))
+
+
+def features_changes(features1: Features, features2: Features, *,
+                     groups: int = GROUPS) -> tuple[Uncertain, Uncertain]:
+    """(`features_distance`, `features_relative_change`) of two checkpoints' features from one
+    pass over them: the two laziness criteria, each with its jackknife error bar."""
+    k, norms = _pair_norms(features1, features2)
+    return (_jackknife(lambda keep, scale: _distance(norms(keep, scale)), k, groups),
+            _jackknife(lambda keep, scale: _relative_change(norms(keep, scale)), k, groups))
+
+
 def features_distance(features1: Features, features2: Features, *,
                       groups: int = GROUPS) -> Uncertain:
     """Kernel distance ``1 − ⟨K1, K2⟩_F / (‖K1‖_F ‖K2‖_F)`` between two checkpoints' kernels.
@@ -405,12 +427,7 @@ def features_distance(features1: Features, features2: Features, *,
     every projection, so the distance reflects the kernels' change, not two sketches' noise.
     """
     k, norms = _pair_norms(features1, features2)
-
-    def estimate(keep, scale):
-        n = norms(keep, scale)
-        return np.nan if n is None else 1.0 - n[2] / np.sqrt(n[0] * n[1])
-
-    return _jackknife(estimate, k, groups)
+    return _jackknife(lambda keep, scale: _distance(norms(keep, scale)), k, groups)
 
 
 def features_relative_change(features1: Features, features2: Features, *,
@@ -429,16 +446,7 @@ def features_relative_change(features1: Features, features2: Features, *,
     kernels barely differ, read then as a negative change (within its error bars of 0), not
     clipped, so its jackknife error bar stays honest. A square root near 0 is biased (its
     jackknife ``bias`` says by how much): read ``.corrected``, as the laziness verdict does.
-    A separate function, not a second return of `features_distance`, so that one's result keeps
-    its shape; each reads the two feature sets once.
+    `features_changes` gives this and `features_distance` from one pass over the features.
     """
     k, norms = _pair_norms(features1, features2)
-
-    def estimate(keep, scale):
-        n = norms(keep, scale)
-        if n is None:
-            return np.nan
-        ratio = (n[0] + n[1] - 2.0 * n[2]) / n[1]
-        return float(np.sign(ratio) * np.sqrt(abs(ratio)))
-
-    return _jackknife(estimate, k, groups)
+    return _jackknife(lambda keep, scale: _relative_change(norms(keep, scale)), k, groups)

@@ -69,8 +69,7 @@ from .._kind import KernelArray, per_output_kernel
 from .._sketch.analysis import (
     Uncertain,
     features_alignment,
-    features_distance,
-    features_relative_change,
+    features_changes,
     features_ridge,
     features_spectrum,
     features_trace,
@@ -756,10 +755,9 @@ def _sketched_run(nets, step_arr, x, y, xt, yt, chosen, *, labels, k, memory, st
             what="The init-spread yardstick (`inits`)", why="it compares exact kernels of "
             "independent initializations.", reason=reason))
     with cautions.watch():
-        distance = tuple(None if i == 0 else features_distance(f, feats[0])
-                         for i, f in enumerate(feats))
-        change = tuple(None if i == 0 else features_relative_change(f, feats[0])
-                       for i, f in enumerate(feats))
+        pairs = [None] + [features_changes(f, feats[0]) for f in feats[1:]]
+        distance = tuple(None if p is None else p[0] for p in pairs)
+        change = tuple(None if p is None else p[1] for p in pairs)
         align = tuple(features_alignment(f, y) for f in feats)
         answers, tests = [], []
         for s in chosen:
