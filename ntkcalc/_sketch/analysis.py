@@ -188,11 +188,17 @@ def features_spectrum(features, *, top: int = 10, groups: int = GROUPS,
     result = _jackknife(estimate, k, groups)
     if not vectors:
         return result, None
+    return result, top_vectors(phi, g, top)[1]
+
+
+def top_vectors(phi, g: np.ndarray, top: int) -> tuple[np.ndarray, np.ndarray]:
+    """All eigenvalues of ``K̂ = φφᵀ`` from its Gram ``g = φᵀφ`` (descending, (k,)), and the top
+    eigenvectors ``φ V Λ^{-1/2}`` (rows, top), orthonormal, streamed over φ's rows."""
     w, v = eigh_descending(g)
-    w, v = w[:top], v[:, :top]
-    inv = np.where(w > 0, 1.0 / np.sqrt(np.maximum(w, 1e-300)), 0.0)
-    u = np.concatenate([part @ (v * inv) for _, part in _chunks(phi)])
-    return result, u
+    head = w[:top]
+    inv = np.where(head > 0, 1.0 / np.sqrt(np.maximum(head, 1e-300)), 0.0)
+    u = np.concatenate([part @ (v[:, :top] * inv) for _, part in _chunks(phi)])
+    return w, u
 
 
 def clusters(eigenvalues: Uncertain, *, bars: float = RESOLVE_BARS) -> tuple[tuple[int, int], ...]:

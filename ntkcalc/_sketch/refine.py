@@ -34,7 +34,7 @@ from .._analysis import _checks
 from .._analysis._eig import eigh_descending
 from .._analysis._result import Result
 from .._analysis.operator import NTKOperator
-from .analysis import _array, _chunks, _moments
+from .analysis import _array, _moments, top_vectors
 from .features import Features
 
 #: Relative rise of a top Ritz value in the last block below which the refinement stops.
@@ -100,11 +100,10 @@ def _orthonormal(p: np.ndarray, scale: float) -> np.ndarray:
 
 
 def _start(phi, q: int) -> tuple[np.ndarray, np.ndarray]:
-    """The sketch's top-q eigenvectors of φφᵀ, orthonormal (rows, q), and its eigenvalues."""
-    g, _, _, _ = _moments(phi)
-    w, v = eigh_descending(g)
-    u = np.concatenate([part @ v[:, :q] for _, part in _chunks(phi)])
-    return _orthonormal(u, float(np.linalg.norm(u, 2))), w
+    """The sketch's top-q eigenvectors of φφᵀ, orthonormal (rows, q) again in float64 (columns
+    of zero eigenvalue dropped), and its eigenvalues."""
+    w, u = top_vectors(phi, _moments(phi)[0], q)
+    return _orthonormal(u, 1.0), w
 
 
 def refine_spectrum(features, operator, *, top: int = 10, extra: int = 10, max_blocks: int = 6,
